@@ -1,0 +1,1 @@
+"""trackproof host harness: suites, sessions, links, the simulator and analysis."""

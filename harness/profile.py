@@ -1,0 +1,162 @@
+"""The robot profile: what the team believes about its robot (TOML).
+
+    id = "..."                         # the robot id its hub reports in the hello
+    wheel_diameter_mm, track_mm
+    distance_scale, spin_scale, pivot_scale   # correction factors (default 1.0)
+    [sensors.NAME] forward_mm, left_mm        # reflectance sensors in the robot frame
+    [follow.forward] / [follow.backward]      # sensors (pair listed left first, or one edge
+                                              # sensor), edge, kp, kd, speed_pct
+    [junctions] left, right, threshold_pct    # sensors that see side branches
+    [link] kind, watchdog_ms
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from harness.tomlfile import Table, load_toml
+
+
+@dataclass(frozen=True)
+class SensorPlace:
+    forward_mm: float
+    left_mm: float
+
+
+@dataclass(frozen=True)
+class FollowSettings:
+    sensors: tuple[str, ...]
+    edge: str = "left"
+    kp: float = 0.6
+    kd: float = 0.0
+    speed_pct: float = 40.0
+
+
+@dataclass(frozen=True)
+class RobotProfile:
+    id: str
+    wheel_diameter_mm: float
+    track_mm: float
+    sensors: dict[str, SensorPlace]
+    follow: dict[str, FollowSettings]
+    junction_left: str = ""
+    junction_right: str = ""
+    threshold_pct: float = 60.0
+    distance_scale: float = 1.0
+    spin_scale: float = 1.0
+    pivot_scale: float = 1.0
+    watchdog_ms: int = 500
+    source: str = ""
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    def geometry(self) -> dict[str, float]:
+        """What the hub needs to turn millimetres and degrees into motor degrees."""
+        return {
+            "wheel_diameter_mm": self.wheel_diameter_mm,
+            "track_mm": self.track_mm,
+            "distance_scale": self.distance_scale,
+            "spin_scale": self.spin_scale,
+            "pivot_scale": self.pivot_scale,
+        }
+
+    def action_defaults(self, action: str, params: dict[str, Any]) -> dict[str, Any]:
+        """Parameters for an action with the profile's settings filled in where not given."""
+        out = dict(params)
+        if action == "follow_line":
+            direction = out.get("direction", "forward")
+            settings = self.follow.get(direction)
+            if settings is not None:
+                out.setdefault("sensors", list(settings.sensors))
+                if len(settings.sensors) == 1:
+                    out.setdefault("edge", settings.edge)
+                out.setdefault("kp", settings.kp)
+                out.setdefault("kd", settings.kd)
+                out.setdefault("speed_pct", settings.speed_pct)
+            if out.get("junctions"):
+                out.setdefault("junction_left", self.junction_left)
+                out.setdefault("junction_right", self.junction_right)
+            out.setdefault("threshold_pct", self.threshold_pct)
+        elif action == "probe_edge":
+            out.setdefault("threshold_pct", self.threshold_pct)
+        return out
+
+
+def load_profile(path: str | Path) -> RobotProfile:
+    return profile_from_table(load_toml(path))
+
+
+def profile_from_table(t: Table) -> RobotProfile:
+    robot_id = t.str("id")
+    if not robot_id.strip():
+        raise t.error("id", "must not be empty")
+    wheel = t.num("wheel_diameter_mm", positive=True, high=1000)
+    track = t.num("track_mm", positive=True, high=2000)
+    scales = {k: t.num(k, 1.0, low=0.5, high=2.0) for k in ("distance_scale", "spin_scale", "pivot_scale")}
+    sensors_t = t.table("sensors")
+    sensors: dict[str, SensorPlace] = {}
+    for name in sensors_t.data:
+        s = sensors_t.table(name)
+        sensors[name] = SensorPlace(s.num("forward_mm", low=-500, high=500), s.num("left_mm", low=-500, high=500))
+        s.done()
+    if not sensors:
+        raise t.error("sensors", "at least one sensor is needed")
+    if len(sensors) > 8:
+        raise t.error("sensors", f"at most 8 sensors, got {len(sensors)}")
+
+    def sensor_ref(table: Table, key: str, default: Any = ...) -> str:
+        name = table.str(key) if default is ... else table.str(key, default)
+        if name and name not in sensors:
+            raise table.error(key, f"unknown sensor {name!r} (profile has: {', '.join(sensors)})")
+        return name
+
+    follow: dict[str, FollowSettings] = {}
+    if t.has("follow"):
+        follow_t = t.table("follow")
+        for direction in ("forward", "backward"):
+            if not follow_t.has(direction):
+                continue
+            f = follow_t.table(direction)
+            names = f.str_list("sensors")
+            if not 1 <= len(names) <= 2:
+                raise f.error("sensors", f"expected one or two sensor names, got {len(names)}")
+            for name in names:
+                if name not in sensors:
+                    raise f.error("sensors", f"unknown sensor {name!r} (profile has: {', '.join(sensors)})")
+            follow[direction] = FollowSettings(
+                sensors=tuple(names),
+                edge=f.str("edge", "left", choices=("left", "right")),
+                kp=f.num("kp", 0.6, low=0, high=100),
+                kd=f.num("kd", 0.0, low=0, high=100),
+                speed_pct=f.num("speed_pct", 40.0, low=0, high=100),
+            )
+            f.done()
+        follow_t.done()
+    junction_left = junction_right = ""
+    threshold = 60.0
+    if t.has("junctions"):
+        j = t.table("junctions")
+        junction_left = sensor_ref(j, "left", "")
+        junction_right = sensor_ref(j, "right", "")
+        threshold = j.num("threshold_pct", 60.0, low=1, high=99)
+        j.done()
+    watchdog_ms = 500
+    if t.has("link"):
+        link = t.table("link")
+        watchdog_ms = link.int("watchdog_ms", 500, low=50, high=60000)
+        link.done()
+    t.done()
+    return RobotProfile(
+        id=robot_id,
+        wheel_diameter_mm=wheel,
+        track_mm=track,
+        sensors=sensors,
+        follow=follow,
+        junction_left=junction_left,
+        junction_right=junction_right,
+        threshold_pct=threshold,
+        watchdog_ms=watchdog_ms,
+        source=t.file,
+        **scales,
+    )

@@ -1,0 +1,214 @@
+"""The host side of one conversation with a hub over a link.
+
+hello() checks the protocol version and learns the robot; run() starts an action or routine,
+keeps the hub's watchdog fed, and collects telemetry, events and the result. Commands are
+retransmitted with the same sequence number when no answer comes, which the hub recognises, so
+nothing starts twice. On Ctrl-C or any error during a run, the robot is told to stop first.
+"""
+
+from __future__ import annotations
+
+import secrets
+from dataclasses import dataclass, field
+from typing import Any
+
+from harness.errors import HubRefused, LinkError, ProtocolError
+from harness.links import Link
+from harness.telemetry import Telemetry, decode_batches
+from hub_side import wire
+
+
+@dataclass(frozen=True)
+class HubInfo:
+    robot_id: str
+    proto: int
+    board: dict[str, Any]
+    sensors: tuple[str, ...]
+    actions: tuple[str, ...]
+    routines: tuple[str, ...]
+    control_period_us: int
+    max_telemetry_hz: int
+    geometry: dict[str, float]
+
+
+@dataclass
+class RunRecord:
+    action: str
+    params: dict[str, Any]
+    result: dict[str, Any]
+    events: list[dict[str, Any]]
+    faults: list[dict[str, Any]]
+    telemetry: Telemetry
+    frames_lost: int = 0
+
+    @property
+    def status(self) -> str:
+        return str(self.result.get("status", "unknown"))
+
+
+@dataclass
+class _Inbox:
+    replies: dict[int, tuple[int, dict[str, Any]]] = field(default_factory=dict)
+    hub_info: dict[str, Any] | None = None
+    events: list[dict[str, Any]] = field(default_factory=list)
+    faults: list[dict[str, Any]] = field(default_factory=list)
+    telemetry: list[bytes] = field(default_factory=list)
+    result: dict[str, Any] | None = None
+
+
+class Session:
+    def __init__(self, link: Link, *, watchdog_ms: int = 500, reply_timeout_s: float = 0.5,
+                 retries: int = 4, session_id: str | None = None) -> None:
+        self.link = link
+        self.watchdog_ms = watchdog_ms
+        self.reply_timeout_s = reply_timeout_s
+        self.retries = retries
+        self.session_id = session_id or secrets.token_hex(4)
+        self.hub: HubInfo | None = None
+        self._reader = wire.FrameReader()
+        self._seq = 0
+        self._last_sent = link.now()
+        self._hub_seq: int | None = None
+        self.frames_lost = 0
+        self._inbox = _Inbox()
+        link.write(b"\x00")  # ends any partial frame the hub may hold
+
+    # ------------------------------------------------------------ commands
+
+    def hello(self, geometry: dict[str, float] | None = None, expect_robot_id: str | None = None) -> HubInfo:
+        body: dict[str, Any] = {"proto": wire.PROTOCOL_VERSION, "session": self.session_id,
+                                "watchdog_ms": self.watchdog_ms}
+        if geometry:
+            body["geometry"] = geometry
+        inbox = self._inbox
+        inbox.hub_info = None
+        kind, reply = self._command(wire.HELLO, body, lambda: inbox.hub_info is not None)
+        if kind == wire.REFUSE:
+            if reply.get("code") == "protocol":
+                raise ProtocolError(f"protocol mismatch: host speaks {wire.PROTOCOL_VERSION}, "
+                                    f"hub speaks {reply.get('hub_proto')} ({reply.get('text')})")
+            raise HubRefused(str(reply.get("code")), str(reply.get("text")))
+        info = inbox.hub_info
+        assert info is not None
+        self.hub = HubInfo(
+            robot_id=str(info["robot_id"]), proto=int(info["proto"]), board=dict(info.get("board", {})),
+            sensors=tuple(info["sensors"]), actions=tuple(info["actions"]),
+            routines=tuple(info.get("routines", ())), control_period_us=int(info["control_period_us"]),
+            max_telemetry_hz=int(info["max_telemetry_hz"]), geometry=dict(info.get("geometry", {})),
+        )
+        if expect_robot_id is not None and self.hub.robot_id != expect_robot_id:
+            raise ProtocolError(f"wrong robot: expected {expect_robot_id!r}, but {self.hub.robot_id!r} answered")
+        return self.hub
+
+    def run(self, action: str, params: dict[str, Any] | None = None, *, telemetry_hz: int = 100,
+            timeout_s: float | None = None) -> RunRecord:
+        """Run one action or routine to its end and return everything it reported."""
+        if self.hub is None:
+            raise ProtocolError("hello() must come before run()")
+        params = dict(params or {})
+        inbox = self._inbox
+        inbox.events, inbox.faults, inbox.telemetry, inbox.result = [], [], [], None
+        lost_before = self.frames_lost
+        if timeout_s is None:
+            timeout_s = float(params.get("timeout_s", 30.0)) + 5.0
+        try:
+            reply = self._command(wire.START, {"action": action, "params": params, "telemetry_hz": telemetry_hz})
+            if reply[0] == wire.REFUSE:
+                raise HubRefused(str(reply[1].get("code")), str(reply[1].get("text")))
+            deadline = self.link.now() + timeout_s
+            while inbox.result is None:
+                if self.link.now() > deadline:
+                    raise LinkError(f"no result for {action} within {timeout_s:.1f} s")
+                self._wait(min(self._ping_interval_s(), max(0.0, deadline - self.link.now())))
+        except HubRefused:
+            raise
+        except BaseException:
+            self.stop_robot()
+            raise
+        telemetry = decode_batches(inbox.telemetry, self.hub.sensors)
+        return RunRecord(action, params, inbox.result, list(inbox.events), list(inbox.faults), telemetry,
+                         self.frames_lost - lost_before)
+
+    def stop_robot(self) -> None:
+        """Tell the hub to stop now; best effort, never raises (used on the way out of errors)."""
+        try:
+            frame = wire.encode_message(wire.STOP, self._next_seq(), {})
+            for _ in range(2):
+                self.link.write(frame)
+            self._last_sent = self.link.now()
+        except Exception:  # the link may be what failed; the hub's watchdog is the backstop
+            pass
+
+    def close(self) -> None:
+        self.link.close()
+
+    # ------------------------------------------------------------ plumbing
+
+    def _ping_interval_s(self) -> float:
+        return self.watchdog_ms / 1000.0 / 4.0
+
+    def _next_seq(self) -> int:
+        self._seq = (self._seq % 0xFFFF) + 1
+        return self._seq
+
+    def _command(self, msg_type: int, body: dict[str, Any], answered=None) -> tuple[int, dict[str, Any]]:
+        """Send a command and wait for its answer, retransmitting the same frame if none comes."""
+        seq = self._next_seq()
+        frame = wire.encode_message(msg_type, seq, body)
+        inbox = self._inbox
+        name = wire.MESSAGE_NAMES[msg_type]
+        for _attempt in range(self.retries + 1):
+            self.link.write(frame)
+            self._last_sent = self.link.now()
+            deadline = self._last_sent + self.reply_timeout_s
+            while self.link.now() < deadline:
+                if answered is not None and answered():
+                    return (wire.ACK, {})
+                if seq in inbox.replies:
+                    return inbox.replies.pop(seq)
+                self._wait(deadline - self.link.now(), ping=False)
+            if answered is not None and answered():
+                return (wire.ACK, {})
+            if seq in inbox.replies:
+                return inbox.replies.pop(seq)
+        raise LinkError(f"no answer from the hub to {name} after {self.retries + 1} tries "
+                        f"({self.reply_timeout_s:.1f} s each) on link {self.link.name}")
+
+    def _wait(self, timeout_s: float, ping: bool = True) -> None:
+        data = self.link.read(max(0.0, timeout_s))
+        if data:
+            for msg_type, seq, body in self._reader.feed(data):
+                self._track_seq(seq)
+                self._dispatch(msg_type, body)
+        if ping and self.link.now() - self._last_sent >= self._ping_interval_s():
+            self.link.write(wire.encode_message(wire.PING, self._next_seq(), {}))
+            self._last_sent = self.link.now()
+
+    def _track_seq(self, seq: int) -> None:
+        # The hub numbers every frame it sends; a gap means frames were lost on the way.
+        if self._hub_seq is not None:
+            gap = (seq - self._hub_seq - 1) & 0xFFFF
+            if gap < 0x8000:
+                self.frames_lost += gap
+        self._hub_seq = seq
+
+    def _dispatch(self, msg_type: int, body: bytes) -> None:
+        inbox = self._inbox
+        if msg_type == wire.TELEMETRY:
+            inbox.telemetry.append(bytes(body))
+            return
+        try:
+            msg = wire.decode_json(body)
+        except wire.FrameError:
+            return
+        if msg_type == wire.HUB_INFO:
+            inbox.hub_info = msg
+        elif msg_type in (wire.ACK, wire.REFUSE):
+            if isinstance(msg.get("ref"), int):
+                inbox.replies[msg["ref"]] = (msg_type, msg)
+        elif msg_type == wire.EVENT:
+            inbox.events.append(msg)
+        elif msg_type == wire.FAULT:
+            inbox.faults.append(msg)
+        elif msg_type == wire.RESULT:
+            inbox.result = msg

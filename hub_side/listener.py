@@ -1,0 +1,405 @@
+"""The hub listener: one cooperative loop that serves the host over a link.
+
+Each tick() reads link bytes, dispatches commands, advances the running action once per control
+period, samples telemetry at the requested rate, and stops the motors if the host has been
+silent longer than the watchdog time. Only the built-in actions and routines registered by name
+ever run; nothing received is evaluated as code.
+
+A routine is a generator function routine(ctx, params) registered with @listener.routine("name").
+It yields once per control period, may run built-in actions with `yield from ctx.run(name,
+params)`, and returns a dict of what it measured.
+"""
+
+from hub_side import wire
+from hub_side.actions import BUILTINS
+from hub_side.board import ticks_diff
+from hub_side.motion import DEFAULT_GEOMETRY, ParamError, check_params, deg_per_mm
+
+MAX_TELEMETRY_HZ = 500
+DEFAULT_TELEMETRY_HZ = 100
+DEFAULT_WATCHDOG_MS = 500
+IDLE_POLL_US = 5000
+_BATCH_MAX_SPAN_US = 200000  # flush telemetry at least this often so the host sees it live
+_REPLY_CACHE = 16
+_STALL_US = 400000
+_STALL_MIN_PCT = 15
+
+
+class ActionContext:
+    """What an action or routine sees: the board through a few measured helpers, the robot's
+    geometry, its own elapsed time, and a way to emit events. Distances and heading changes are
+    measured from the moment this action started."""
+
+    def __init__(self, listener, t_start_us):
+        board = listener.board
+        self.board = board
+        self.geometry = listener.geometry
+        self.period_us = listener.period_us
+        self.t_start_us = t_start_us
+        self.t_us = 0
+        self.error_pct = 0.0
+        self._listener = listener
+        self._mm_per_deg = 1.0 / deg_per_mm(listener.geometry)
+        self.enc_start = board.encoders_deg()
+        self.heading_start = board.heading_deg()
+
+    def set_power(self, left_pct, right_pct):
+        self._listener.power = (left_pct, right_pct)
+        self.board.set_power(left_pct, right_pct)
+
+    def encoders(self):
+        return self.board.encoders_deg()
+
+    def heading(self):
+        return self.board.heading_deg()
+
+    def reflectance(self, name):
+        return self.board.reflectance_pct(name)
+
+    def distance_mm(self):
+        """Signed travel of the axle midpoint since this action started."""
+        left, right = self.board.encoders_deg()
+        start = self.enc_start
+        return ((left - start[0]) + (right - start[1])) * 0.5 * self._mm_per_deg
+
+    def event(self, kind, fields=None):
+        self._listener.send_event(kind, fields)
+
+    def run(self, name, params):
+        """Run a built-in action inside a routine: `result = yield from ctx.run("turn", {...})`."""
+        if name not in BUILTINS:
+            raise ValueError("unknown action %r" % name)
+        fn, spec = BUILTINS[name]
+        p = check_params(spec, params, self._listener.sensor_names)
+        child = ActionContext(self._listener, self._listener.t_us)
+        self._listener.contexts.append(child)
+        try:
+            result = yield from fn(child, p)
+        finally:
+            self._listener.contexts.pop()
+        out = child.measurements()
+        out.update(result or {})
+        return out
+
+    def measurements(self):
+        left, right = self.board.encoders_deg()
+        return {
+            "distance_mm": round(self.distance_mm(), 2),
+            "heading_change_deg": round(self.board.heading_deg() - self.heading_start, 2),
+            "enc_left_deg": left - self.enc_start[0],
+            "enc_right_deg": right - self.enc_start[1],
+            "duration_s": round(self.t_us / 1e6, 4),
+        }
+
+
+class Listener:
+    def __init__(self, board, robot_id="robot", control_period_us=10000, geometry=None):
+        self.board = board
+        self.robot_id = robot_id
+        self.period_us = control_period_us
+        self.geometry = dict(DEFAULT_GEOMETRY)
+        if geometry:
+            self.geometry.update(geometry)
+        self.sensor_names = tuple(board.sensor_names)
+        self.routines = {}
+        self.power = (0, 0)
+        self.t_us = 0
+        self.contexts = []
+        self._reader = wire.FrameReader()
+        self._tx_seq = 0
+        self._session = None
+        self._watchdog_us = DEFAULT_WATCHDOG_MS * 1000
+        self._replies = {}
+        self._reply_order = []
+        self._last_rx_us = board.ticks_us()
+        self._gen = None
+        self._batch = wire.TelemetryBatch(len(self.sensor_names))
+        board.link_write(b"\x00")  # ends any partial frame the host may hold
+
+    # ------------------------------------------------------------ registration
+
+    def routine(self, name, spec=None):
+        """Decorator registering a team routine under name; spec checks its parameters."""
+
+        def register(fn):
+            self.routines[name] = (fn, spec)
+            return fn
+
+        return register
+
+    # ------------------------------------------------------------ the loop
+
+    def serve(self):
+        """Run forever on a real board."""
+        while True:
+            self.board.idle_us(min(self.tick(), 2000))
+
+    def tick(self):
+        """One pass of the loop; returns how many microseconds until something is due."""
+        board = self.board
+        now = board.ticks_us()
+        data = board.link_read()
+        if data:
+            for msg_type, seq, body in self._reader.feed(data):
+                self._last_rx_us = now
+                self._handle(msg_type, seq, body)
+        if self._gen is None:
+            return IDLE_POLL_US
+        self.t_us += ticks_diff(now, self._last_tick_us)
+        self._last_tick_us = now
+        for ctx in self.contexts:
+            ctx.t_us = self.t_us - ctx.t_start_us
+        if ticks_diff(now, self._last_rx_us) > self._watchdog_us:
+            self._finish("watchdog", None, ("watchdog", "host silent for more than %d ms" % (self._watchdog_us // 1000)))
+            return IDLE_POLL_US
+        if self.t_us >= self._next_control_us:
+            self._step()
+            self._next_control_us += self.period_us
+            if self._next_control_us <= self.t_us:
+                self._next_control_us = self.t_us + self.period_us
+        if self._gen is None:
+            return 0
+        due = self._next_control_us
+        if self._telemetry_us:
+            if self.t_us >= self._next_sample_us:
+                self._sample()
+                self._next_sample_us += self._telemetry_us
+                if self._next_sample_us <= self.t_us:
+                    self._next_sample_us = self.t_us + self._telemetry_us
+            if self._next_sample_us < due:
+                due = self._next_sample_us
+        return max(0, due - self.t_us)
+
+    def _step(self):
+        ctx = self.contexts[0]
+        try:
+            next(self._gen)
+        except StopIteration as done:
+            result = done.args[0] if done.args else None
+            self._finish("done", result)
+            return
+        except Exception as exc:  # an action or routine failed: stop, report, keep serving
+            self._finish("error", None, ("action_error", "%s: %s" % (type(exc).__name__, exc)))
+            return
+        if self.t_us > self._timeout_us:
+            self.send_event("timeout", {"after_s": self._timeout_us / 1e6})
+            self._finish("timeout", None)
+            return
+        self._check_stall(ctx)
+
+    def _check_stall(self, ctx):
+        enc = self.board.encoders_deg()
+        pushing = abs(self.power[0]) >= _STALL_MIN_PCT or abs(self.power[1]) >= _STALL_MIN_PCT
+        if enc != self._stall_enc or not pushing:
+            self._stall_enc = enc
+            self._stall_since_us = self.t_us
+        elif self.t_us - self._stall_since_us > _STALL_US:
+            self.send_event("stall", {"power_pct": [self.power[0], self.power[1]]})
+            self._finish("stalled", None)
+
+    def _sample(self):
+        board = self.board
+        ctx = self.contexts[-1]
+        root = self.contexts[0]
+        left, right = board.encoders_deg()
+        refl = self._refl
+        names = self.sensor_names
+        for i in range(len(names)):
+            refl[i] = board.reflectance_pct(names[i])
+        batch = self._batch
+        batch.add(self.t_us, left - root.enc_start[0], right - root.enc_start[1], board.heading_deg(),
+                  ctx.error_pct, self.power[0], self.power[1], refl)
+        self._sample_index += 1
+        if batch.full() or batch.span_us(self.t_us) >= _BATCH_MAX_SPAN_US:
+            self._flush_telemetry()
+
+    def _flush_telemetry(self):
+        batch = self._batch
+        if batch.count:
+            self._send_frame(wire.TELEMETRY, batch.body(self.board.battery_mv()))
+        batch.reset(self._sample_index)
+
+    # ------------------------------------------------------------ actions
+
+    def _start(self, name, params, telemetry_hz):
+        """Start an action or routine; returns None or (code, text) for a refusal."""
+        if name in BUILTINS:
+            fn, spec = BUILTINS[name]
+        elif name in self.routines:
+            fn, spec = self.routines[name]
+        else:
+            known = sorted(list(BUILTINS) + list(self.routines))
+            return ("unknown_action", "no action or routine %r (known: %s)" % (name, ", ".join(known)))
+        if not isinstance(params, dict):
+            return ("bad_param", "params must be an object")
+        if spec is not None:
+            try:
+                params = check_params(spec, params, self.sensor_names)
+            except ParamError as exc:
+                return ("bad_param", str(exc))
+        if isinstance(telemetry_hz, bool) or not isinstance(telemetry_hz, (int, float)) or not 0 <= telemetry_hz <= MAX_TELEMETRY_HZ:
+            return ("bad_param", "telemetry_hz: must be between 0 and %d" % MAX_TELEMETRY_HZ)
+        self.t_us = 0
+        self._last_tick_us = self.board.ticks_us()
+        ctx = ActionContext(self, 0)
+        self.contexts = [ctx]
+        self._action = name
+        self._telemetry_us = int(1e6 / telemetry_hz) if telemetry_hz else 0
+        self._next_sample_us = 0
+        self._next_control_us = self.period_us
+        self._sample_index = 0
+        self._batch.reset(0)
+        self._refl = [0] * len(self.sensor_names)
+        self._timeout_us = int(params.get("timeout_s", 3600) * 1e6) if spec is not None else 3600 * 1000000
+        self._stall_enc = None
+        self._stall_since_us = 0
+        gen = fn(ctx, params)
+        # The first step runs now, so a parameter combination the action rejects is a refusal.
+        try:
+            next(gen)
+        except StopIteration as done:
+            self._gen = gen
+            self._pending_result = done.args[0] if done.args else None
+            return None
+        except Exception as exc:  # refused before anything moved for long
+            self.board.set_power(0, 0)
+            self.power = (0, 0)
+            self.contexts = []
+            code = "bad_param" if isinstance(exc, ValueError) else "action_error"
+            return (code, str(exc))
+        self._gen = gen
+        self._pending_result = None
+        return None
+
+    def _finish(self, status, result, fault=None):
+        self.board.set_power(0, 0)
+        self.power = (0, 0)
+        gen = self._gen
+        self._gen = None
+        if gen is not None:
+            gen.close()
+        if self._telemetry_us:
+            self._sample()
+        self._flush_telemetry()
+        if fault is not None:
+            self._send_json(wire.FAULT, {"code": fault[0], "text": fault[1]})
+        out = self.contexts[0].measurements()
+        if result is None:
+            result = self._pending_result
+        if result:
+            out.update(result)
+        if "status" not in out or status != "done":
+            out["status"] = status
+        out["action"] = self._action
+        out["samples"] = self._sample_index
+        self._send_json(wire.RESULT, out)
+        self.contexts = []
+
+    # ------------------------------------------------------------ messages
+
+    def _handle(self, msg_type, seq, body):
+        if msg_type == wire.PING:
+            self._send_json(wire.PONG, {"ref": seq})
+            return
+        if msg_type not in (wire.HELLO, wire.START, wire.STOP):
+            return  # hub-to-host types or unknown: ignore, never act on them
+        cached = self._replies.get(seq)
+        if cached is not None and cached[0] == msg_type and cached[1] == body:
+            self.board.link_write(cached[2])  # a retransmission: answer again, do nothing twice
+            return
+        try:
+            msg = wire.decode_json(body)
+        except wire.FrameError as exc:
+            self._reply(seq, msg_type, body, wire.REFUSE, {"ref": seq, "code": "bad_message", "text": str(exc)})
+            return
+        if msg_type == wire.HELLO:
+            self._hello(seq, body, msg)
+        elif self._session is None:
+            self._reply(seq, msg_type, body, wire.REFUSE, {"ref": seq, "code": "no_hello", "text": "send a hello first"})
+        elif msg_type == wire.START:
+            self._start_command(seq, body, msg)
+        else:
+            if self._gen is not None:
+                self._finish("stopped", None)
+            self._reply(seq, msg_type, body, wire.ACK, {"ref": seq})
+
+    def _hello(self, seq, body, msg):
+        proto = msg.get("proto")
+        if proto != wire.PROTOCOL_VERSION:
+            text = "hub %s speaks protocol %d, host speaks %s" % (self.robot_id, wire.PROTOCOL_VERSION, proto)
+            self._send_json(wire.REFUSE, {"ref": seq, "code": "protocol", "text": text, "hub_proto": wire.PROTOCOL_VERSION})
+            return
+        watchdog_ms = msg.get("watchdog_ms", DEFAULT_WATCHDOG_MS)
+        geometry = msg.get("geometry", {})
+        problem = None
+        if isinstance(watchdog_ms, bool) or not isinstance(watchdog_ms, (int, float)) or not 50 <= watchdog_ms <= 60000:
+            problem = "watchdog_ms: must be between 50 and 60000"
+        elif not isinstance(geometry, dict):
+            problem = "geometry: must be an object"
+        else:
+            for key in geometry:
+                value = geometry[key]
+                if key not in DEFAULT_GEOMETRY:
+                    problem = "geometry.%s: unknown key" % key
+                elif isinstance(value, bool) or not isinstance(value, (int, float)) or value <= 0:
+                    problem = "geometry.%s: must be a positive number" % key
+        if problem is not None:
+            self._send_json(wire.REFUSE, {"ref": seq, "code": "bad_param", "text": problem})
+            return
+        if self._gen is not None:
+            self._finish("stopped", None)  # a new host took over: never leave a move running
+        self._session = msg.get("session")
+        self._replies = {}
+        self._reply_order = []
+        self._watchdog_us = int(watchdog_ms * 1000)
+        self.geometry = dict(DEFAULT_GEOMETRY)
+        self.geometry.update(geometry)
+        info = {
+            "proto": wire.PROTOCOL_VERSION,
+            "robot_id": self.robot_id,
+            "board": self.board.capabilities,
+            "sensors": list(self.sensor_names),
+            "actions": sorted(BUILTINS),
+            "routines": sorted(self.routines),
+            "control_period_us": self.period_us,
+            "max_telemetry_hz": MAX_TELEMETRY_HZ,
+            "geometry": self.geometry,
+        }
+        self._reply(seq, wire.HELLO, body, wire.HUB_INFO, info)
+
+    def _start_command(self, seq, body, msg):
+        if self._gen is not None:
+            refusal = ("busy", "%s is still running" % self._action)
+        else:
+            refusal = self._start(msg.get("action"), msg.get("params", {}), msg.get("telemetry_hz", DEFAULT_TELEMETRY_HZ))
+        if refusal is None:
+            self._reply(seq, wire.START, body, wire.ACK, {"ref": seq})
+        else:
+            self._reply(seq, wire.START, body, wire.REFUSE, {"ref": seq, "code": refusal[0], "text": refusal[1]})
+
+    def _reply(self, seq, msg_type, body, reply_type, obj):
+        frame = self._frame_json(reply_type, obj)
+        self._replies[seq] = (msg_type, bytes(body), frame)
+        self._reply_order.append(seq)
+        if len(self._reply_order) > _REPLY_CACHE:
+            old = self._reply_order.pop(0)
+            if old in self._replies and old not in self._reply_order:
+                del self._replies[old]
+        self.board.link_write(frame)
+
+    def send_event(self, kind, fields=None):
+        event = {"kind": kind, "t_s": self.t_us / 1e6}
+        if fields:
+            event.update(fields)
+        self._send_json(wire.EVENT, event)
+
+    def _send_json(self, msg_type, obj):
+        self.board.link_write(self._frame_json(msg_type, obj))
+
+    def _frame_json(self, msg_type, obj):
+        self._tx_seq = (self._tx_seq + 1) & 0xFFFF
+        return wire.encode_message(msg_type, self._tx_seq, obj)
+
+    def _send_frame(self, msg_type, body):
+        self._tx_seq = (self._tx_seq + 1) & 0xFFFF
+        self.board.link_write(wire.encode_frame(msg_type, self._tx_seq, body))
