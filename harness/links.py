@@ -7,6 +7,7 @@ clock is virtual, so waiting on it advances the simulation instead of sleeping.
 
 from __future__ import annotations
 
+import math
 import time
 from abc import ABC, abstractmethod
 
@@ -46,7 +47,8 @@ class SimLink(Link):
     def read(self, timeout_s: float) -> bytes:
         sim = self.sim
         tx = sim.board.tx
-        end_us = sim.t_us + max(0, int(timeout_s * 1e6))
+        # Round up: a wait shorter than a microsecond must still let virtual time move on.
+        end_us = sim.t_us + max(1, math.ceil(timeout_s * 1e6))
         while not tx and sim.t_us < end_us:
             sim.step(end_us - sim.t_us)
         data = bytes(tx)

@@ -64,6 +64,7 @@ class Session:
         self.reply_timeout_s = reply_timeout_s
         self.retries = retries
         self.session_id = session_id or secrets.token_hex(4)
+        self.protocol_version = wire.PROTOCOL_VERSION
         self.hub: HubInfo | None = None
         self._reader = wire.FrameReader()
         self._seq = 0
@@ -76,7 +77,7 @@ class Session:
     # ------------------------------------------------------------ commands
 
     def hello(self, geometry: dict[str, float] | None = None, expect_robot_id: str | None = None) -> HubInfo:
-        body: dict[str, Any] = {"proto": wire.PROTOCOL_VERSION, "session": self.session_id,
+        body: dict[str, Any] = {"proto": self.protocol_version, "session": self.session_id,
                                 "watchdog_ms": self.watchdog_ms}
         if geometry:
             body["geometry"] = geometry
@@ -85,7 +86,7 @@ class Session:
         kind, reply = self._command(wire.HELLO, body, lambda: inbox.hub_info is not None)
         if kind == wire.REFUSE:
             if reply.get("code") == "protocol":
-                raise ProtocolError(f"protocol mismatch: host speaks {wire.PROTOCOL_VERSION}, "
+                raise ProtocolError(f"protocol mismatch: host speaks {self.protocol_version}, "
                                     f"hub speaks {reply.get('hub_proto')} ({reply.get('text')})")
             raise HubRefused(str(reply.get("code")), str(reply.get("text")))
         info = inbox.hub_info

@@ -204,8 +204,10 @@ def _keep_order(index: np.ndarray) -> np.ndarray | None:
 def decode_batches(bodies: Sequence[bytes], sensor_names: Sequence[str]) -> Telemetry:
     """Decode telemetry batch bodies (as sent by TelemetryBatch.body) into one Telemetry.
 
-    All bodies must come from one action with the given sensor list. FrameError if any body's
-    length does not match its header or its sensor count differs from len(sensor_names).
+    All bodies must come from one action with the given sensor list. Batches may arrive out of
+    order or more than once (a retransmission): samples come back in index order, each once, and
+    `dropped` counts the indices never seen. FrameError if any body's length does not match its
+    header or its sensor count differs from len(sensor_names).
     """
     names = _check_sensor_names(sensor_names)
     if len(bodies) == 0:

@@ -348,7 +348,7 @@ class Listener:
             return
         if self._gen is not None:
             self._finish("stopped", None)  # a new host took over: never leave a move running
-        self._session = msg.get("session")
+        self._session = msg.get("session", "")
         self._replies = {}
         self._reply_order = []
         self._watchdog_us = int(watchdog_ms * 1000)

@@ -62,7 +62,8 @@ def clamp(value, low, high):
 
 class ParamError(ValueError):
     def __init__(self, key, text):
-        ValueError.__init__(self, "%s: %s" % (key, text))
+        # super(), not ValueError.__init__: MicroPython's built-in types expose no __init__.
+        super().__init__("%s: %s" % (key, text))
         self.key = key
         self.text = text
 
