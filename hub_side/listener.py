@@ -205,7 +205,7 @@ class Listener:
         refl = self._refl
         names = self.sensor_names
         for i in range(len(names)):
-            refl[i] = board.reflectance_pct(names[i])
+            refl[i] = min(255, max(0, int(board.reflectance_pct(names[i]))))
         batch = self._batch
         batch.add(self.t_us, left - root.enc_start[0], right - root.enc_start[1], board.heading_deg(),
                   ctx.error_pct, self.power[0], self.power[1], refl)

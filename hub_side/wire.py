@@ -64,16 +64,24 @@ MESSAGE_NAMES = {
 #   n_sensors u8
 TELEMETRY_HEADER = "<IIHBB"
 TELEMETRY_HEADER_BYTES = const(12)
-# Each sample: dt (10 us units after t0) u16, encoder left and right (deg) i32, heading
-# (0.01 deg, clockwise positive) i32, controller error (0.1 %) i16, motor power left and right
-# (%) i8, then one u8 reflectance (%) per sensor, in the order of the hub's sensor list.
-TELEMETRY_SAMPLE = "<Hiiihbb"
+# Each sample: dt (10 us units after t0) u16, encoder left and right (deg since the action
+# started) u32, heading (0.01 deg, clockwise positive) u32, controller error (0.1 %) u16, motor
+# power left and right (%) u8, then one u8 reflectance (%) per sensor, in the order of the hub's
+# sensor list. Signed values travel in offset binary (value + bias): small numbers then contain
+# no zero byte, and every zero byte costs COBS a pass of the hub's interpreter loop.
+TELEMETRY_SAMPLE = "<HIIIHBB"
 TELEMETRY_SAMPLE_BYTES = const(18)
 TELEMETRY_DT_UNIT_US = const(10)
 HEADING_SCALE = const(100)
 ERROR_SCALE = const(10)
 MAX_BATCH_SAMPLES = const(32)
 MAX_SENSORS = const(8)
+# Biases below 2**30 stay small integers on 32-bit MicroPython ports (no heap allocation).
+BIAS_32 = const(0x3F808080)
+BIAS_16 = const(0x8080)
+BIAS_8 = const(0x80)
+TELEMETRY_LIMIT_32 = const(0x3F000000)  # encoders and heading are clamped to +-this
+TELEMETRY_LIMIT_16 = const(0x7F7F)  # the controller error is clamped to +-this
 
 
 class FrameError(ValueError):
@@ -123,31 +131,22 @@ def cobs_encode(data):
     """COBS-encode data (Cheshire & Baker 1999). The output contains no 0x00 byte.
 
     A final block of exactly 254 non-zero bytes is not followed by an extra 0x01 (the same
-    convention as the `cobs` package); cobs_decode accepts both conventions.
+    convention as the `cobs` package); cobs_decode accepts both conventions. Splitting at the
+    zeros in one C call keeps the per-byte work out of the interpreter, which matters on a hub.
     """
-    data = bytes(data)
-    size = len(data)
+    pieces = bytes(data).split(b"\x00")
+    last = len(pieces) - 1
     out = bytearray()
-    start = 0
-    while True:
-        end = min(start + 254, size)
-        zero = data.find(b"\x00", start, end)
-        if zero >= 0:
-            out.append(zero - start + 1)
-            out.extend(data[start:zero])
-            start = zero + 1
-            continue
-        block = data[start:end]
-        if len(block) == 254:
+    for i in range(last + 1):
+        piece = pieces[i]
+        while len(piece) >= 254:
             out.append(0xFF)
-            out.extend(block)
-            start = end
-            if start == size:
-                break
-            continue
-        out.append(len(block) + 1)
-        out.extend(block)
-        break
+            out.extend(piece[:254])
+            piece = piece[254:]
+            if not piece and i == last:
+                return bytes(out)
+        out.append(len(piece) + 1)
+        out.extend(piece)
     return bytes(out)
 
 
@@ -294,6 +293,8 @@ class TelemetryBatch:
         self.n_sensors = n_sensors
         self.max_samples = max_samples
         self.sample_bytes = telemetry_sample_bytes(n_sensors)
+        # Reflectance goes in with the rest; "B" needs 0..255, which percentages are.
+        self._format = TELEMETRY_SAMPLE + "B" * n_sensors
         self._buf = bytearray(TELEMETRY_HEADER_BYTES + max_samples * self.sample_bytes)
         self.count = 0
         self.first_index = 0
@@ -308,27 +309,23 @@ class TelemetryBatch:
 
     def add(self, t_us, enc_left_deg, enc_right_deg, heading_deg, error_pct, power_left_pct,
             power_right_pct, reflectance_pct):
-        """Append one sample; t_us counts from the action start. Values are clamped to fit."""
+        """Append one sample; t_us counts from the action start. Values are clamped to fit
+        (MicroPython's struct would wrap them silently); reflectance must already be 0..255."""
         if self.count == 0:
             self.t0_us = t_us
-        dt = (t_us - self.t0_us) // TELEMETRY_DT_UNIT_US
-        offset = TELEMETRY_HEADER_BYTES + self.count * self.sample_bytes
         struct.pack_into(
-            TELEMETRY_SAMPLE,
+            self._format,
             self._buf,
-            offset,
-            _clamp(dt, 0, 0xFFFF),
-            _clamp(int(enc_left_deg), -0x7FFFFFFF, 0x7FFFFFFF),
-            _clamp(int(enc_right_deg), -0x7FFFFFFF, 0x7FFFFFFF),
-            _clamp(int(round(heading_deg * HEADING_SCALE)), -0x7FFFFFFF, 0x7FFFFFFF),
-            _clamp(int(round(error_pct * ERROR_SCALE)), -0x7FFF, 0x7FFF),
-            _clamp(int(power_left_pct), -127, 127),
-            _clamp(int(power_right_pct), -127, 127),
+            TELEMETRY_HEADER_BYTES + self.count * self.sample_bytes,
+            min(0xFFFF, max(0, (t_us - self.t0_us) // TELEMETRY_DT_UNIT_US)),
+            min(TELEMETRY_LIMIT_32, max(-TELEMETRY_LIMIT_32, int(enc_left_deg))) + BIAS_32,
+            min(TELEMETRY_LIMIT_32, max(-TELEMETRY_LIMIT_32, int(enc_right_deg))) + BIAS_32,
+            min(TELEMETRY_LIMIT_32, max(-TELEMETRY_LIMIT_32, int(round(heading_deg * HEADING_SCALE)))) + BIAS_32,
+            min(TELEMETRY_LIMIT_16, max(-TELEMETRY_LIMIT_16, int(round(error_pct * ERROR_SCALE)))) + BIAS_16,
+            min(127, max(-127, int(power_left_pct))) + BIAS_8,
+            min(127, max(-127, int(power_right_pct))) + BIAS_8,
+            *reflectance_pct
         )
-        offset += TELEMETRY_SAMPLE_BYTES
-        buf = self._buf
-        for i in range(self.n_sensors):
-            buf[offset + i] = _clamp(int(reflectance_pct[i]), 0, 255)
         self.count += 1
 
     def span_us(self, t_us):
@@ -371,12 +368,12 @@ def unpack_telemetry(body):
         samples.append(
             (
                 t0_us + dt * TELEMETRY_DT_UNIT_US,
-                left,
-                right,
-                heading / HEADING_SCALE,
-                error / ERROR_SCALE,
-                p_left,
-                p_right,
+                left - BIAS_32,
+                right - BIAS_32,
+                (heading - BIAS_32) / HEADING_SCALE,
+                (error - BIAS_16) / ERROR_SCALE,
+                p_left - BIAS_8,
+                p_right - BIAS_8,
                 tuple(body[start : start + n_sensors]),
             )
         )

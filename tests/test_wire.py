@@ -422,8 +422,8 @@ def test_decode_json_accepts_memoryview() -> None:
 # ---------------------------------------------------------------- telemetry
 
 I8 = 2**7 - 1
-I16 = 2**15 - 1
-I32 = 2**31 - 1
+I16 = wire.TELEMETRY_LIMIT_16  # offset binary leaves a little less than the full signed range
+I32 = wire.TELEMETRY_LIMIT_32
 U16 = 2**16 - 1
 
 
@@ -448,7 +448,7 @@ def telemetry_batches(draw):
                 t0_us + offset,
                 draw(st.integers(-I32, I32)),
                 draw(st.integers(-I32, I32)),
-                draw(st.floats(-2e7, 2e7)),
+                draw(st.floats(-I32 / wire.HEADING_SCALE, I32 / wire.HEADING_SCALE)),
                 draw(st.floats(-I16 / 10, I16 / 10)),
                 draw(st.integers(-I8, I8)),
                 draw(st.integers(-I8, I8)),
@@ -505,7 +505,7 @@ def test_telemetry_refuses_too_many_sensors() -> None:
 
 def test_telemetry_clamps_out_of_range_values() -> None:
     batch = wire.TelemetryBatch(3)
-    batch.add(100, I32 + 5, -(I32 + 5), 1e12, 1e9, 300, -300, (300, -5, 42))
+    batch.add(100, I32 + 5, -(I32 + 5), 1e12, 1e9, 300, -300, (255, 0, 42))
     batch.add(50, 0, 0, -1e12, -1e9, 0, 0, (0, 0, 0))  # earlier than t0: dt clamps to 0
     batch.add(100 + 10 * U16 + 12345, 0, 0, 0.0, 0.0, 0, 0, (0, 0, 0))  # dt past a u16
     _, _, battery_mv, _, samples = wire.unpack_telemetry(batch.body(U16 + 10))
