@@ -1,0 +1,109 @@
+"""`trackproof sim` as a user runs it, and the kinematics the hub's actions rely on."""
+
+from __future__ import annotations
+
+import json
+import math
+import subprocess
+import sys
+
+import pandas as pd
+import pytest
+
+from harness.cli import main, parse_value
+from hub_side.motion import DEFAULT_GEOMETRY, deg_per_mm, pivot_motor_deg, ramp_speed_pct, spin_motor_deg
+
+
+def run_cli(capsys, *args: str) -> tuple[int, str, str]:
+    code = main(list(args))
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_sim_follow_line_json_has_result_truth_and_telemetry(capsys, tmp_path):
+    csv = tmp_path / "telemetry.csv"
+    code, out, _ = run_cli(capsys, "sim", "follow_line", "junctions=3", "side=any", "overrun_mm=80",
+                           "speed_pct=50", "--seed", "3", "--json", "--telemetry-csv", str(csv))
+    assert code == 0
+    report = json.loads(out)
+    assert report["result"]["status"] == "done" and report["result"]["junctions"] == 3
+    assert {"start", "end", "travel_mm", "heading_change_deg"} <= set(report["truth"])
+    telemetry = report["telemetry"]
+    assert telemetry["dropped"] == 0 and telemetry["samples"] == report["result"]["samples"]
+    assert "refl_outer_left_pct" in telemetry["channels"]
+    frame = pd.read_csv(csv)
+    assert list(frame.columns) == telemetry["channels"]
+    assert len(frame) == telemetry["samples"]
+
+
+def test_sim_turn_prints_a_readable_report(capsys):
+    code, out, _ = run_cli(capsys, "sim", "turn", "angle_deg=90", "mode=spin", "speed_pct=40")
+    assert code == 0
+    assert "turn on simulated kestrel-7" in out and ": done" in out
+    assert "truth: travelled" in out and "telemetry:" in out
+
+
+@pytest.mark.parametrize("args, message", [
+    (["sim", "jump"], "unknown action 'jump'"),
+    (["sim", "turn", "angle=90"], "turn.angle: unknown parameter"),
+    (["sim", "turn", "angle_deg=ninety"], "turn.angle_deg: expected a number"),
+    (["sim", "turn"], "turn.angle_deg: required"),
+    (["sim", "turn", "angle_deg"], "expected key=value"),
+    (["sim", "probe_edge", "sensor=nose"], "unknown sensor 'nose'"),
+    (["sim", "turn", "angle_deg=90", "--course", "no/such/course.toml"], "no/such/course.toml: file not found"),
+])
+def test_bad_input_is_one_clear_line_and_exit_code_2(capsys, args, message):
+    code, out, err = run_cli(capsys, *args)
+    assert code == 2
+    assert message in err
+    assert "Traceback" not in err and err.count("\n") == 1
+
+
+def test_course_file_errors_name_file_and_key(capsys, tmp_path):
+    course = tmp_path / "bad_course.toml"
+    course.write_text('[start]\nx_mm = 0\ny_mm = 0\n[[lines]]\npoints = [[0, 0], [100, "a"]]\n')
+    code, _, err = run_cli(capsys, "sim", "stop", "--course", str(course))
+    assert code == 2
+    assert f"{course}: lines[0].points[1]: expected [x_mm, y_mm]" in err
+
+
+def test_python_dash_m_harness_works_like_trackproof():
+    done = subprocess.run([sys.executable, "-m", "harness", "sim", "stop", "--json"], capture_output=True,
+                          text=True, timeout=60)
+    assert done.returncode == 0, done.stderr
+    assert json.loads(done.stdout)["result"]["status"] == "done"
+
+
+def test_values_parse_as_numbers_flags_and_lists():
+    assert parse_value("3") == 3 and parse_value("2.5") == 2.5
+    assert parse_value("true") is True and parse_value("left,right") == ["left", "right"]
+    assert parse_value("spin") == "spin"
+
+
+# Common practice for a differential drive (no published source): one motor degree moves a
+# wheel pi*D/360 mm; a spin by angle a needs a*T/D motor degrees per wheel, a pivot twice that.
+# Check values for D = 56 mm and T = 120 mm, computed independently in REFERENCES.md section 9.
+GEOMETRY_56_120 = dict(DEFAULT_GEOMETRY, wheel_diameter_mm=56.0, track_mm=120.0)
+
+
+def test_kinematics_check_values():
+    assert spin_motor_deg(90.0, GEOMETRY_56_120) == pytest.approx(192.857143, abs=1e-6)
+    assert pivot_motor_deg(90.0, GEOMETRY_56_120) == pytest.approx(385.714286, abs=1e-6)
+    assert 100.0 * deg_per_mm(GEOMETRY_56_120) == pytest.approx(204.627784, abs=1e-6)
+    assert deg_per_mm(GEOMETRY_56_120) == pytest.approx(360.0 / (math.pi * 56.0))
+
+
+def test_correction_factors_scale_motor_degrees():
+    scaled = dict(GEOMETRY_56_120, distance_scale=1.02, spin_scale=1.05, pivot_scale=0.97)
+    assert deg_per_mm(scaled) == pytest.approx(1.02 * deg_per_mm(GEOMETRY_56_120))
+    assert spin_motor_deg(90.0, scaled) == pytest.approx(1.05 * 192.857143, abs=1e-5)
+    assert pivot_motor_deg(90.0, scaled) == pytest.approx(0.97 * 385.714286, abs=1e-5)
+
+
+def test_ramp_hold_ramp_profile():
+    p = {"speed_pct": 60.0, "start_pct": 20.0, "ramp_up_mm": 100.0, "end_pct": 10.0, "ramp_down_mm": 50.0}
+    assert ramp_speed_pct(0.0, None, p) == 20.0
+    assert ramp_speed_pct(50.0, None, p) == 40.0  # half-way up the ramp
+    assert ramp_speed_pct(300.0, 200.0, p) == 60.0  # holding
+    assert ramp_speed_pct(400.0, 25.0, p) == 35.0  # half-way down
+    assert ramp_speed_pct(450.0, 0.0, p) == 10.0
