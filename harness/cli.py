@@ -8,14 +8,25 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
+
+from harness.analysis import evaluate, verdict
 from harness.errors import InputError, TrackproofError
+from harness.measure import Measurement
+from harness.report import print_report, write_json, write_junit
+from harness.runner import Runner, RunOutcome, case_statistics
+from harness.store import DEFAULT_DB, Store
+from harness.suites import load_suite, stored_cases
 from harness.links import SimLink
 from harness.profile import load_profile
 from harness.session import Session
-from harness.sim import DEFAULT_COURSE, DEFAULT_PROFILE, Simulation, truth_report, truth_snapshot
+from harness.sim import DEFAULT_COURSE, DEFAULT_PROFILE, SUITES_DIR, Simulation, truth_report, truth_snapshot
 from harness.sim.course import load_course
 from hub_side.actions import BUILTINS
 from hub_side.motion import ParamError, check_params
+
+DEMO_SUITE = SUITES_DIR / "demo.toml"
 
 SAFETY_NOTE = ("Safety: a real robot moves on its own. Keep fingers and loose cables clear, run it "
                "on the floor or a mat with edges, never leave lithium batteries charging or running "
@@ -116,6 +127,100 @@ def print_sim_report(report: dict[str, Any]) -> None:
           f"channels: {', '.join(tel['channels'])}")
 
 
+def open_store(path: Path) -> Store:
+    return Store(path)
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    suite = load_suite(args.suite)
+    console = Console(stderr=False, highlight=False)
+    with open_store(args.db) as store:
+        resume = store.resolve_session(args.resume) if args.resume else None
+        runner = Runner(suite, store, link=args.link, repeat=args.repeat, seed=args.seed,
+                        on_progress=None)
+        with Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                      TextColumn("{task.fields[counts]}"), TimeRemainingColumn(),
+                      console=Console(stderr=True), transient=True) as progress:
+            task = progress.add_task("starting", total=None, counts="")
+
+            def show(case: str, rep: int, index: int, total: int, fails: int) -> None:
+                progress.update(task, description=f"{case} run {rep}", completed=index, total=total,
+                                counts=f"{index - fails} pass {fails} fail")
+
+            runner.on_progress = show
+            report = runner.run(resume=resume)
+    print_report(report, console)
+    if args.json:
+        write_json(report, args.json)
+    if args.junit:
+        write_junit(report, args.junit)
+    if report.status == "aborted":
+        print(f"trackproof: interrupted; finished runs are kept in {args.db}. Resume with:\n"
+              f"  trackproof run {args.suite} --db {args.db} --resume {report.uid}", file=sys.stderr)
+        return 130
+    return 0 if report.passed else 1
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    print("trackproof demo: the invented robot kestrel-7 runs the bundled pre-match suite on the "
+          "simulated harbour run mat,\n20 runs per case, and every run is stored in "
+          f"{args.db}. No hardware needed.\n{SAFETY_NOTE}\n")
+    args.suite, args.link, args.repeat, args.seed, args.resume = DEMO_SUITE, "sim", None, None, None
+    return cmd_run(args)
+
+
+def cmd_sessions(args: argparse.Namespace) -> int:
+    with open_store(args.db) as store:
+        frame = store.sessions()
+    if frame.empty:
+        print(f"no sessions in {args.db}")
+        return 0
+    for row in frame.itertuples(index=False):
+        counts = ", ".join(f"{getattr(row, 'n_' + s)} {s}" for s in ("pass", "fail", "aborted", "link_lost")
+                           if getattr(row, "n_" + s))
+        print(f"{row.uid}  {row.started_at:%Y-%m-%d %H:%M}  {row.status:9} {row.suite_name}  "
+              f"(robot {row.robot_id}, link {row.link}; {row.n_runs} runs: {counts or 'none'})")
+    return 0
+
+
+def cmd_show(args: argparse.Namespace) -> int:
+    with open_store(args.db) as store:
+        uid = store.resolve_session(args.session)
+        info = store.session(uid)
+        runs = store.runs(uid)
+        measurements = store.measurements(uid)
+    console = Console(highlight=False)
+    console.print(f"session {uid}: suite {info['suite_name']} ({info['suite_path']}), robot {info['robot_id']}, "
+                  f"link {info['link']}, seed {info['seed']}, {info['status']}, started {info['started_at']}")
+    for case, judge_by, expect in stored_cases(info["suite_text"]):
+        mine = runs[runs["case_name"] == case]
+        outcomes = []
+        for row in mine.itertuples():
+            rows = measurements[(measurements["case_name"] == case) & (measurements["repetition"] == row.repetition)]
+            outcomes.append(RunOutcome(case, int(row.repetition), row.status,
+                                       [Measurement(m.name, float(m.value), m.unit, m.source) for m in rows.itertuples()]))
+        stats, judged = case_statistics(outcomes, judge_by)
+        checks = evaluate(expect, judged)
+        passed = bool(outcomes) and all(o.status == "pass" for o in outcomes) and verdict(checks) == "pass"
+        console.print(f"\n{case}: {'PASS' if passed else 'FAIL'} ({len(outcomes)} runs: "
+                      + ", ".join(f"{(mine['status'] == s).sum()} {s}" for s in ("pass", "fail", "aborted", "link_lost")
+                                  if (mine["status"] == s).any()) + ")")
+        for source, block in stats.items():
+            for name, s in block.items():
+                if "mean" in s:
+                    console.print(f"  {source:5} {name:18} n={s['n']:3} mean={s['mean']:9.3f} sd={_num(s['sd'])} "
+                                  f"range={_num(s['range'])} rp={_num(s.get('rp'))}")
+                else:
+                    console.print(f"  {source:5} {name:18} n={s['n']:3} rp={_num(s['rp'])}")
+        for check in checks:
+            console.print(f"  {'ok  ' if check.passed else 'FAIL'} {check.text}")
+    return 0
+
+
+def _num(value: Any) -> str:
+    return "-" if value is None else f"{value:.3f}"
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="trackproof",
@@ -135,6 +240,33 @@ def build_parser() -> argparse.ArgumentParser:
     sim.add_argument("--telemetry-csv", type=Path, metavar="PATH", help="write the telemetry as CSV")
     sim.add_argument("--json", action="store_true", help="print one JSON object")
     sim.set_defaults(func=cmd_sim)
+
+    def add_outputs(p: argparse.ArgumentParser) -> None:
+        p.add_argument("--db", type=Path, default=Path(DEFAULT_DB), help=f"results database (default {DEFAULT_DB})")
+        p.add_argument("--json", type=Path, metavar="PATH", help="write the JSON summary here")
+        p.add_argument("--junit", type=Path, metavar="PATH", help="write JUnit XML here")
+
+    run = sub.add_parser("run", help="run a suite and give verdicts",
+                         description="Run every case of a suite, store every run, print verdicts. "
+                                     "Exit codes: 0 all cases pass, 1 a case failed, 2 bad input, "
+                                     "3 link failure.")
+    run.add_argument("suite", type=Path, metavar="SUITE")
+    run.add_argument("--link", default="sim", help="sim, sim:COURSE, serial:PORT or ble:NAME_OR_ADDRESS")
+    run.add_argument("--repeat", type=int, help="runs per case (overrides the suite)")
+    run.add_argument("--seed", type=int, help="simulator seed (overrides the suite)")
+    run.add_argument("--resume", metavar="SESSION", help="continue an interrupted session")
+    add_outputs(run)
+    run.set_defaults(func=cmd_run)
+    demo = sub.add_parser("demo", help="run the bundled demo suite on the simulated robot")
+    add_outputs(demo)
+    demo.set_defaults(func=cmd_demo)
+    sessions = sub.add_parser("sessions", help="list stored sessions, newest first")
+    sessions.add_argument("--db", type=Path, default=Path(DEFAULT_DB))
+    sessions.set_defaults(func=cmd_sessions)
+    show = sub.add_parser("show", help="one session: cases, runs, statistics, verdicts")
+    show.add_argument("session", metavar="SESSION", help="session id, a unique prefix, or latest")
+    show.add_argument("--db", type=Path, default=Path(DEFAULT_DB))
+    show.set_defaults(func=cmd_show)
     return parser
 
 

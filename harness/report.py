@@ -1,0 +1,111 @@
+"""Session results for people (a terminal table per case) and for machines (JSON, JUnit XML).
+
+The JSON summary is stable: a top-level `session` (its uid), `suite`, `robot`, `link`, `seed`,
+`status`, `passed`, and `cases`, a list whose items hold `name`, `verdict` (`pass` or `fail`),
+`judge_by`, `checks` (each with `expectation`, `passed`, `text`), `runs` (each with `repetition`,
+`status`, `note` and `measurements`: name, value, unit, source) and `stats` (per source, per
+metric: n, mean, sd, min, max, range, ci95_low, ci95_high, and rp for lengths and angles).
+"""
+
+from __future__ import annotations
+
+import json
+import xml.etree.ElementTree as ET
+from pathlib import Path
+from typing import Any
+
+from rich.console import Console
+from rich.table import Table
+
+from harness.runner import SessionReport
+
+
+def summary_dict(report: SessionReport) -> dict[str, Any]:
+    return {
+        "session": report.uid,
+        "suite": report.suite.name,
+        "robot": report.suite.profile.id,
+        "link": report.link,
+        "seed": report.seed,
+        "status": report.status,
+        "passed": report.passed,
+        "cases": [
+            {
+                "name": c.case.name,
+                "verdict": c.verdict,
+                "judge_by": c.case.judge_by,
+                "checks": [{"expectation": k.expectation, "passed": k.passed, "text": k.text} for k in c.checks],
+                "runs": [
+                    {"repetition": r.repetition, "status": r.status, "note": r.note,
+                     "measurements": [{"name": m.name, "value": m.value, "unit": m.unit, "source": m.source}
+                                      for m in r.measurements]}
+                    for r in c.runs
+                ],
+                "stats": c.stats,
+            }
+            for c in report.cases
+        ],
+    }
+
+
+def write_json(report: SessionReport, path: Path) -> None:
+    path.write_text(json.dumps(summary_dict(report), indent=2) + "\n", encoding="utf-8")
+
+
+def write_junit(report: SessionReport, path: Path) -> None:
+    """JUnit XML: one testsuite per session, one testcase per case, failures with the numbers."""
+    failures = sum(c.verdict != "pass" for c in report.cases)
+    suite = ET.Element("testsuite", name=report.suite.name, tests=str(len(report.cases)),
+                       failures=str(failures), errors="0", time=f"{report.sim_seconds:.3f}")
+    for case in report.cases:
+        element = ET.SubElement(suite, "testcase", classname=f"trackproof.{report.suite.profile.id}",
+                                name=case.case.name)
+        if case.verdict != "pass":
+            lines = [k.text for k in case.checks if not k.passed]
+            bad_runs = [r for r in case.runs if r.status != "pass"]
+            if bad_runs:
+                lines.append(f"{len(bad_runs)} of {len(case.runs)} runs did not pass: "
+                             + "; ".join(f"run {r.repetition} {r.status} {r.note}".strip() for r in bad_runs[:5]))
+            if len(case.runs) < case.case.repeat and report.status == "aborted":
+                lines.append(f"session aborted after {len(case.runs)} runs")
+            failure = ET.SubElement(element, "failure", message=lines[0] if lines else "failed")
+            failure.text = "\n".join(lines)
+        out = ET.SubElement(element, "system-out")
+        out.text = "\n".join(k.text for k in case.checks)
+    root = ET.Element("testsuites", name="trackproof")
+    root.append(suite)
+    ET.indent(root)
+    path.write_bytes(ET.tostring(root, encoding="utf-8", xml_declaration=True))
+
+
+def _fmt(value: Any, digits: int = 2) -> str:
+    return "-" if value is None else f"{value:.{digits}f}"
+
+
+def print_report(report: SessionReport, console: Console) -> None:
+    for case in report.cases:
+        source = case.case.judge_by
+        counts = {s: sum(r.status == s for r in case.runs) for s in ("pass", "fail", "aborted", "link_lost")}
+        title = (f"{case.case.name}: {case.verdict.upper()}  "
+                 f"({counts['pass']} pass, {counts['fail']} fail"
+                 + (f", {counts['aborted']} aborted" if counts["aborted"] else "")
+                 + f"; judged by {source})")
+        table = Table(title=title, title_justify="left", show_edge=False)
+        for column in ("metric", "source", "n", "mean", "sd", "range", "95% CI ±", "RP"):
+            table.add_column(column, justify="left" if column in ("metric", "source") else "right")
+        for src, block in case.stats.items():
+            for name, s in block.items():
+                if name == "stop_spread_2d_mm":
+                    table.add_row("stop (x, y)", src, str(s["n"]), "", "", "", "", _fmt(s["rp"]))
+                    continue
+                half = None if s.get("ci95_low") is None else (s["ci95_high"] - s["ci95_low"]) / 2
+                table.add_row(name, src, str(s["n"]), _fmt(s["mean"]), _fmt(s["sd"]), _fmt(s["range"]),
+                              _fmt(half), _fmt(s.get("rp")))
+        console.print(table)
+        for check in case.checks:
+            mark = "[green]ok[/green]  " if check.passed else "[red]FAIL[/red]"
+            console.print(f"  {mark} {check.text}", highlight=False)
+        console.print()
+    verdicts = [c.verdict for c in report.cases]
+    console.print(f"session {report.uid}: {verdicts.count('pass')} of {len(verdicts)} cases passed"
+                  f" ({report.status}; {report.sim_seconds:.0f} s of robot time in {report.wall_seconds:.1f} s)")

@@ -1,0 +1,233 @@
+"""Runs a suite: cases x repeats on one robot, each run stored the moment it ends.
+
+Between runs the robot is reset as the case says: `sim` re-places the simulated robot (with its
+placement error), `operator` asks the person at the mat, `routine:NAME` has the robot drive itself
+back. Ctrl-C stops the robot first (the session does that), marks the run `aborted`, keeps every
+finished run, and the session can be resumed with --resume.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from importlib.metadata import version
+from typing import Any
+
+from harness.analysis import Check, evaluate, iso9283_rp, summarize, verdict
+from harness.errors import HubRefused, InputError, LinkError, ProtocolError
+from harness.links import SimLink, require_sim
+from harness.measure import Measurement, measure_run, metrics_by_name
+from harness.session import RunRecord, Session
+from harness.sim import Simulation, truth_report, truth_snapshot
+from harness.sim.course import load_course
+from harness.store import Store
+from harness.suites import Case, Suite
+
+
+class OperatorQuit(Exception):
+    """The operator chose to quit at a reset prompt."""
+
+
+@dataclass
+class RunOutcome:
+    case: str
+    repetition: int
+    status: str
+    measurements: list[Measurement]
+    note: str = ""
+
+
+@dataclass
+class CaseReport:
+    case: Case
+    runs: list[RunOutcome] = field(default_factory=list)
+    stats: dict[str, dict[str, Any]] = field(default_factory=dict)
+    checks: list[Check] = field(default_factory=list)
+    verdict: str = "fail"
+
+
+@dataclass
+class SessionReport:
+    uid: str
+    suite: Suite
+    link: str
+    seed: int
+    cases: list[CaseReport]
+    status: str  # finished or aborted
+    sim_seconds: float = 0.0
+    wall_seconds: float = 0.0
+
+    @property
+    def passed(self) -> bool:
+        return all(c.verdict == "pass" for c in self.cases)
+
+
+def case_statistics(runs: list[RunOutcome], judge_by: str) -> tuple[dict[str, dict[str, Any]], dict[str, Any]]:
+    """Per source and metric: summary statistics, plus ISO 9283-style RP for stop positions."""
+    finished = [r.measurements for r in runs if r.status in ("pass", "fail")]
+    stats: dict[str, dict[str, Any]] = {}
+    judged: dict[str, Any] = {}
+    for source in ("robot", "truth"):
+        metrics = metrics_by_name(finished, source)
+        if source == judge_by:
+            judged = metrics
+        block: dict[str, Any] = {}
+        for name, values in metrics.items():
+            if name == "stop_xy_mm":
+                block["stop_spread_2d_mm"] = {"rp": _finite(iso9283_rp(values)), "n": int(len(values))}
+                continue
+            entry = summarize(values).as_dict()
+            if name.endswith(("_mm", "_deg")) and len(values) >= 2:
+                entry["rp"] = _finite(iso9283_rp(values))
+            block[name] = entry
+        if block:
+            stats[source] = block
+    return stats, judged
+
+
+def _finite(x: float) -> float | None:
+    return None if x != x else round(float(x), 6)
+
+
+class Runner:
+    def __init__(self, suite: Suite, store: Store, *, link: str = "sim", repeat: int | None = None,
+                 seed: int | None = None, ask: Callable[[str], str] = input,
+                 on_progress: Callable[[str, int, int, int, int], None] | None = None) -> None:
+        self.suite = suite
+        self.store = store
+        self.link_spec = link
+        self.repeat = repeat
+        self.seed = seed if seed is not None else (suite.seed if suite.seed is not None else 0)
+        self.ask = ask
+        self.on_progress = on_progress
+        course_arg = require_sim(link)
+        course_path = course_arg or suite.course_path
+        if course_path is None:
+            raise InputError("the simulated link needs a course: set course in the suite or use --link sim:COURSE",
+                             file=str(suite.path), key="course")
+        self.sim = Simulation(load_course(course_path), suite.profile, seed=self.seed)
+        self.session = Session(SimLink(self.sim), watchdog_ms=suite.profile.watchdog_ms,
+                               session_id=f"run-{self.seed}")
+
+    def repeats(self, case: Case) -> int:
+        return self.repeat if self.repeat is not None else case.repeat
+
+    def run(self, resume: str | None = None) -> SessionReport:
+        suite = self.suite
+        self.session.hello(geometry=suite.profile.geometry(), expect_robot_id=suite.profile.id)
+        done: dict[tuple[str, int], RunOutcome] = {}
+        if resume is not None:
+            uid = resume
+            done = self._finished_runs(uid)
+            self.store.reopen_session(uid)
+        else:
+            uid = self.store.begin_session(
+                suite_name=suite.name, suite_path=str(suite.path), suite_text=suite.text,
+                profile_text=suite.profile_text, robot_id=suite.profile.id, link=self.link_spec,
+                seed=self.seed, tool_version=version("trackproof"))
+        reports = [CaseReport(case) for case in suite.cases]
+        total = sum(self.repeats(c) for c in suite.cases)
+        counts = {"pass": 0, "fail": 0}
+        started_wall, started_sim = time.perf_counter(), self.sim.t_us
+        status = "finished"
+        try:
+            index = 0
+            for report in reports:
+                case = report.case
+                for rep in range(1, self.repeats(case) + 1):
+                    index += 1
+                    outcome = done.get((case.name, rep))
+                    if outcome is None:
+                        outcome = self._one_run(uid, case, rep)
+                    report.runs.append(outcome)
+                    if outcome.status in counts:
+                        counts[outcome.status] += 1
+                    if self.on_progress:
+                        self.on_progress(case.name, rep, index, total, counts["fail"])
+        except (KeyboardInterrupt, OperatorQuit):
+            status = "aborted"
+        except (LinkError, ProtocolError):
+            self.store.end_session(uid, "aborted")
+            raise
+        for report in reports:
+            self._judge(report)
+        self.store.end_session(uid, status)
+        return SessionReport(uid, suite, self.link_spec, self.seed, reports, status,
+                             (self.sim.t_us - started_sim) / 1e6, time.perf_counter() - started_wall)
+
+    def _finished_runs(self, uid: str) -> dict[tuple[str, int], RunOutcome]:
+        runs = self.store.runs(uid)
+        measurements = self.store.measurements(uid)
+        out: dict[tuple[str, int], RunOutcome] = {}
+        for row in runs.itertuples():
+            if row.status not in ("pass", "fail"):
+                continue
+            mine = measurements[(measurements["case_name"] == row.case_name)
+                                & (measurements["repetition"] == row.repetition)]
+            out[(row.case_name, int(row.repetition))] = RunOutcome(
+                row.case_name, int(row.repetition), row.status,
+                [Measurement(m.name, float(m.value), m.unit, m.source) for m in mine.itertuples()])
+        return out
+
+    def _reset(self, case: Case, rep: int) -> None:
+        if case.reset == "sim":
+            self.sim.reset()
+        elif case.reset == "operator":
+            answer = self.ask(f"[{case.name} run {rep}] put the robot at the start; Enter to go, s to skip, q to quit: ")
+            if answer.strip().lower() == "q":
+                raise OperatorQuit()
+            if answer.strip().lower() == "s":
+                raise _Skip()
+        else:
+            record = self.session.run(case.reset.split(":", 1)[1], {})
+            if record.status != "done":
+                raise _Skip(f"reset routine ended {record.status}")
+
+    def _one_run(self, uid: str, case: Case, rep: int) -> RunOutcome:
+        run_id = self.store.begin_run(uid, case.name, rep, {"steps": [s.params for s in case.steps]})
+        records: list[RunRecord] = []
+        truths: list[dict[str, Any] | None] = []
+        try:
+            try:
+                self._reset(case, rep)
+            except _Skip as skip:
+                self.store.finish_run(run_id, "aborted", {}, [], [], None, note=f"skipped at reset {skip}".strip())
+                return RunOutcome(case.name, rep, "aborted", [], "skipped")
+            status, note = "pass", ""
+            for step in case.steps:
+                before = truth_snapshot(self.sim)
+                try:
+                    record = self.session.run(step.name, step.params, telemetry_hz=self.suite.telemetry_hz)
+                except HubRefused as exc:
+                    status, note = "fail", str(exc)
+                    break
+                records.append(record)
+                truths.append(truth_report(before, truth_snapshot(self.sim)))
+                if record.status != "done":
+                    status, note = "fail", f"{step.name} ended {record.status}"
+                    break
+        except BaseException as exc:
+            link_lost = isinstance(exc, (LinkError, ProtocolError))
+            self.store.finish_run(run_id, "link_lost" if link_lost else "aborted", {}, [], [], None,
+                                  note=f"{type(exc).__name__}: {exc}")
+            raise
+        measurements = measure_run(case.steps[: len(records)], records, truths, self.suite.line_width_mm)
+        result = {"steps": [r.result for r in records]}
+        events = [e for r in records for e in r.events]
+        telemetry = records[0].telemetry if records else None
+        self.store.finish_run(run_id, status, result, events, [m.as_tuple() for m in measurements], telemetry,
+                              note=note)
+        return RunOutcome(case.name, rep, status, measurements, note)
+
+    def _judge(self, report: CaseReport) -> None:
+        report.stats, judged = case_statistics(report.runs, report.case.judge_by)
+        report.checks = evaluate(report.case.expect, judged)
+        every_run_passed = bool(report.runs) and all(r.status == "pass" for r in report.runs)
+        expected = self.repeats(report.case)
+        complete = len(report.runs) == expected
+        report.verdict = "pass" if every_run_passed and complete and verdict(report.checks) == "pass" else "fail"
+
+
+class _Skip(Exception):
+    pass

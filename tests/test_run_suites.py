@@ -1,0 +1,143 @@
+"""`trackproof run` / `demo` / `sessions` / `show` end to end on the simulator, and suite validation."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import xml.etree.ElementTree as ET
+from pathlib import Path
+
+import pytest
+
+from harness.cli import main
+from harness.store import Store
+
+SUITES = Path(__file__).resolve().parents[1] / "suites"
+
+
+def write_suite(tmp_path: Path, body: str, name: str = "suite.toml") -> Path:
+    for f in ("practice_robot.toml", "practice_course.toml"):
+        shutil.copy(SUITES / f, tmp_path / f)
+    path = tmp_path / name
+    path.write_text('robot = "practice_robot.toml"\ncourse = "practice_course.toml"\n' + body)
+    return path
+
+
+LOOSE_AND_TIGHT = '''
+name = "loose and tight"
+repeat = 5
+seed = 9
+
+[[cases]]
+name = "loose turn"
+action = "turn"
+params = { angle_deg = 90, using = "gyro" }
+expect = { angle_error_deg = { mean_abs_max = 5.0, sd_max = 2.0 } }
+
+[[cases]]
+name = "tight turn"
+action = "turn"
+params = { angle_deg = 90, using = "gyro" }
+expect = { angle_error_deg = { sd_max = 0.001 } }
+'''
+
+
+def test_loose_expectation_passes_tight_one_fails(tmp_path, capsys):
+    suite = write_suite(tmp_path, LOOSE_AND_TIGHT)
+    db, summary, junit = tmp_path / "r.sqlite", tmp_path / "s.json", tmp_path / "j.xml"
+    code = main(["run", str(suite), "--link", "sim", "--db", str(db), "--json", str(summary), "--junit", str(junit)])
+    assert code == 1  # a case failed
+    data = json.loads(summary.read_text())
+    verdicts = {c["name"]: c["verdict"] for c in data["cases"]}
+    assert verdicts == {"loose turn": "pass", "tight turn": "fail"}
+    tight = next(c for c in data["cases"] if c["name"] == "tight turn")
+    assert len(tight["runs"]) == 5 and all(r["status"] == "pass" for r in tight["runs"])
+    assert tight["stats"]["robot"]["angle_error_deg"]["n"] == 5
+    root = ET.parse(junit).getroot()
+    cases = {tc.get("name"): tc for tc in root.iter("testcase")}
+    assert cases["loose turn"].find("failure") is None
+    failure = cases["tight turn"].find("failure")
+    assert failure is not None and "angle_error_deg.sd_max 0.001: sd" in failure.text and "exceeds" in failure.text
+    with Store(db) as store:
+        runs = store.runs(data["session"])
+    assert len(runs) == 10 and set(runs["status"]) == {"pass"}
+
+
+def test_demo_runs_end_to_end_and_sessions_show_it(tmp_path, capsys):
+    db = tmp_path / "demo.sqlite"
+    assert main(["demo", "--db", str(db), "--json", str(tmp_path / "demo.json")]) == 0
+    out = capsys.readouterr().out
+    assert "4 of 4 cases passed" in out
+    data = json.loads((tmp_path / "demo.json").read_text())
+    assert [len(c["runs"]) for c in data["cases"]] == [20, 20, 20, 20]
+    stop_case = data["cases"][0]
+    # The robot's own stop measurement (probe) agrees with the truth to about a millimetre.
+    robot, truth = stop_case["stats"]["robot"]["stop_mm"], stop_case["stats"]["truth"]["stop_mm"]
+    assert robot["mean"] == pytest.approx(truth["mean"], abs=1.0)
+    assert main(["sessions", "--db", str(db)]) == 0
+    assert data["session"] in capsys.readouterr().out
+    assert main(["show", "latest", "--db", str(db)]) == 0
+    shown = capsys.readouterr().out
+    assert "stop past the crossroads: PASS" in shown and "stop_mm.mean_within" in shown
+
+
+BAD_SUITES = [
+    ("", "cases: missing (required)"),
+    ("[[cases]]\nname = 'x'\naction = 'jump'\n", "cases[0].action: expected one of"),
+    ("[[cases]]\nname = 'x'\naction = 'turn'\n", "cases[0].params.angle_deg: required"),
+    ("[[cases]]\nname = 'x'\naction = 'turn'\nparams = { angle_deg = 'a' }\n", "cases[0].params.angle_deg: expected a number"),
+    ("[[cases]]\nname = 'x'\naction = 'turn'\nparams = { angle_deg = 90, spin = 1 }\n", "cases[0].params.spin: unknown parameter"),
+    ("[[cases]]\nname = 'x'\naction = 'probe_edge'\nparams = { sensor = 'nose' }\n", "unknown sensor 'nose'"),
+    ("repeat = 0\n[[cases]]\nname = 'x'\naction = 'stop'\n", "repeat: must be at least 1"),
+    ("[[cases]]\nname = 'x'\nrepeat = -2\naction = 'stop'\n", "cases[0].repeat: must be at least 1"),
+    ("[[cases]]\nname = 'x'\naction = 'stop'\nreset = 'magic'\n", "cases[0].reset: expected sim, operator or routine:NAME"),
+    ("[[cases]]\nname = 'x'\naction = 'stop'\ncolour = 'red'\n", "cases[0].colour: unknown key"),
+    ("[[cases]]\nname = 'x'\naction = 'stop'\n[[cases]]\nname = 'x'\naction = 'stop'\n", "case name 'x' is used twice"),
+    ("[[cases]]\nname = 'x'\naction = 'stop'\nexpect = { stop_mm = { near = 3 } }\n", "near"),
+    ("[[cases]]\nname = 'x'\naction = 'stop'\nexpect = { stop_mm = { mean_within = [9, 1] } }\n", "mean_within"),
+    ("[[cases]]\nname = 'x'\naction = 'stop'\njudge_by = 'gut'\n", "cases[0].judge_by: expected one of robot, truth"),
+    ("[[cases]]\nname = 'x'\nsteps = []\n", "cases[0].steps: expected at least one step"),
+    ("[[cases]]\nname = 'x'\nsteps = [{ action = 'stop' }]\naction = 'stop'\n", "give either steps or action"),
+    ("[[cases]]\nname = ''\naction = 'stop'\n", "cases[0].name: must not be empty"),
+    ("line_width_mm = -3\n[[cases]]\nname = 'x'\naction = 'stop'\n", "line_width_mm: must be greater than 0"),
+    ("telemetry_hz = 900\n[[cases]]\nname = 'x'\naction = 'stop'\n", "telemetry_hz: must be at most 500"),
+    ("cases = 3\n", "cases: expected an array of tables"),
+    ("[[cases]\n", "not valid TOML"),
+]
+
+
+@pytest.mark.parametrize("body, message", BAD_SUITES)
+def test_bad_suite_is_one_clear_line(tmp_path, capsys, body, message):
+    suite = write_suite(tmp_path, body)
+    code = main(["run", str(suite), "--db", str(tmp_path / "r.sqlite")])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert str(suite) in err and message in err
+    assert "Traceback" not in err
+
+
+BAD_PROFILES = [
+    ("wheel_diameter_mm = 56.0", "wheel_diameter_mm = -56.0", "wheel_diameter_mm: must be greater than 0"),
+    ('id = "kestrel-7"', 'id = ""', "id: must not be empty"),
+    ('left = "outer_left"', 'left = "whisker"', "junctions.left: unknown sensor 'whisker'"),
+    ("forward_mm = 70.0", 'forward_mm = "far"', "sensors.left.forward_mm: expected a number"),
+    ("spin_scale = 1.0", "spin_scale = 7.0", "spin_scale: must be at most 2.0"),
+]
+
+
+@pytest.mark.parametrize("good, bad, message", BAD_PROFILES)
+def test_bad_profile_names_file_and_key(tmp_path, capsys, good, bad, message):
+    suite = write_suite(tmp_path, "[[cases]]\nname = 'x'\naction = 'stop'\n")
+    profile = tmp_path / "practice_robot.toml"
+    text = profile.read_text()
+    assert good in text
+    profile.write_text(text.replace(good, bad, 1))
+    assert main(["run", str(suite), "--db", str(tmp_path / "r.sqlite")]) == 2
+    err = capsys.readouterr().err
+    assert f"{profile}: {message}" in err
+
+
+def test_real_links_say_they_are_not_available_yet(tmp_path, capsys):
+    suite = write_suite(tmp_path, "[[cases]]\nname = 'x'\naction = 'stop'\n")
+    assert main(["run", str(suite), "--link", "serial:/dev/ttyACM0", "--db", str(tmp_path / "r.sqlite")]) == 3
+    assert "serial links are not available in this version yet" in capsys.readouterr().err
