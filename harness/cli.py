@@ -127,8 +127,8 @@ def print_sim_report(report: dict[str, Any]) -> None:
           f"channels: {', '.join(tel['channels'])}")
 
 
-def open_store(path: Path) -> Store:
-    return Store(path)
+def open_store(path: Path, readonly: bool = False) -> Store:
+    return Store(path, readonly=readonly)
 
 
 def cmd_run(args: argparse.Namespace) -> int:
@@ -170,7 +170,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 
 def cmd_sessions(args: argparse.Namespace) -> int:
-    with open_store(args.db) as store:
+    if not args.db.exists():
+        print(f"no sessions yet: {args.db} does not exist")
+        return 0
+    with open_store(args.db, readonly=True) as store:
         frame = store.sessions()
     if frame.empty:
         print(f"no sessions in {args.db}")
@@ -184,7 +187,7 @@ def cmd_sessions(args: argparse.Namespace) -> int:
 
 
 def cmd_show(args: argparse.Namespace) -> int:
-    with open_store(args.db) as store:
+    with open_store(args.db, readonly=True) as store:
         uid = store.resolve_session(args.session)
         info = store.session(uid)
         runs = store.runs(uid)

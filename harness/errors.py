@@ -5,6 +5,7 @@
      +-- LinkError           the byte path to the hub failed or timed out
      +-- ProtocolError       the hub answered something we cannot use (e.g. protocol version)
      +-- HubRefused          the hub refused a command (code and text from the hub)
+     +-- StoreError          the results database cannot be used (harness.store; names the file)
 """
 
 from __future__ import annotations

@@ -632,7 +632,8 @@ class Store:
                 )
                 conn.executemany(
                     "INSERT INTO telemetry_channels (run_id, channel, dtype, data) VALUES (?, ?, ?, ?)",
-                    [(run_id, name, array.dtype.str, memoryview(array).cast("B")) for name, array in channels.items()],
+                    [(run_id, name, array.dtype.str, memoryview(array).cast("B"))
+                     for name, array in channels.items()],
                 )
 
     def end_session(self, uid: str, status: str) -> None:
@@ -650,6 +651,20 @@ class Store:
                 "UPDATE sessions SET status = ?, ended_at = ? WHERE id = ?", (status, _now(), session_id)
             )
         self._own_sessions.discard(session_id)
+
+    def reopen_session(self, uid: str) -> None:
+        """Make an ended session 'running' again so a resumed runner can add the runs it lacks.
+
+        Its earlier runs stay as they were; a repetition recorded again is a new run beside the
+        old one, so nothing that happened is ever rewritten.
+        """
+        with self._transaction(f"reopen session {uid}") as conn:
+            session_id, status = self._session_id(conn, uid)
+            if status == "running":
+                raise StoreError(f"{self.path}: session {uid} is already running")
+            conn.execute("UPDATE sessions SET status = 'running', ended_at = NULL, note = '' WHERE id = ?",
+                         (session_id,))
+        self._own_sessions.add(session_id)
 
     def _session_id(self, conn: sqlite3.Connection, uid: str) -> tuple[int, str]:
         row = conn.execute("SELECT id, status FROM sessions WHERE uid = ?", (uid,)).fetchone()
@@ -780,7 +795,9 @@ class Store:
         expected = {_INDEX_CHANNEL, _BATTERY_CHANNEL, *channel_names(sensors)}
         wrong = sorted(name for name in expected if name not in arrays or arrays[name].shape != (n_samples,))
         if wrong:
-            raise StoreError(f"{self.path}: the telemetry of run {run_id} is damaged (channels {', '.join(wrong)})")
+            raise StoreError(
+                f"{self.path}: the telemetry of run {run_id} is damaged (channels {', '.join(wrong)})"
+            )
         return int(dropped), sensors, arrays
 
     def telemetry(self, run_id: int) -> pd.DataFrame:

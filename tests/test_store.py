@@ -33,7 +33,8 @@ SENSORS = ("left", "centre", "right")
 SUITE_TEXT = '[suite]\nname = "junctions"\n'
 
 
-def make_telemetry(n: int, sensors: tuple[str, ...] = SENSORS, skip: tuple[int, ...] = (), seed: int = 0) -> Telemetry:
+def make_telemetry(n: int, sensors: tuple[str, ...] = SENSORS, skip: tuple[int, ...] = (),
+                   seed: int = 0) -> Telemetry:
     """n samples through the hub's own batch builder and the host decoder; batches listed in
     skip are left out, so the recording has gaps and a dropped count."""
     rng = np.random.default_rng(seed)
@@ -92,7 +93,8 @@ def test_session_run_measurement_round_trip(db: Path) -> None:
 
         runs = store.runs(uid)
         assert runs["samples"].dtype == "Int64" and runs[["samples", "dropped"]].isna().all(axis=None)
-        assert runs.drop(columns=["samples", "dropped"]).to_dict("records")[0] | {"started_at": None, "ended_at": None} == {
+        first = runs.drop(columns=["samples", "dropped"]).to_dict("records")[0]
+        assert first | {"started_at": None, "ended_at": None} == {
             "run_id": run_id, "case_name": "third junction", "repetition": 1, "status": "fail",
             "params": {"overrun_mm": 80, "gain": 0.5}, "result": {"overrun_measured_mm": 82.5, "samples": 3},
             "events": [{"kind": "junction", "sides": "left+right"}], "started_at": None, "ended_at": None,
@@ -275,6 +277,23 @@ def test_reopen_recovers_an_interrupted_run(db: Path) -> None:
         assert store.recovered == ((), 0)
 
 
+def test_reopen_session_resumes_without_rewriting_runs(db: Path) -> None:
+    with Store(db) as store:
+        uid = new_session(store)
+        record_run(store, uid, "c", 1)
+        store.begin_run(uid, "c", 2, {})
+    with Store(db) as store:  # recovered as aborted; now resumed
+        store.reopen_session(uid)
+        assert store.session(uid)["status"] == "running" and store.session(uid)["ended_at"] is None
+        with pytest.raises(StoreError, match="already running"):
+            store.reopen_session(uid)
+        record_run(store, uid, "c", 2)
+        store.end_session(uid, "finished")
+        runs = store.runs(uid)
+        assert runs[["repetition", "status"]].values.tolist() == [[1, "pass"], [2, "aborted"], [2, "pass"]]
+        assert store.session(uid)["status"] == "finished"
+
+
 def test_one_writer_at_a_time_readers_beside_it(db: Path) -> None:
     with Store(db) as writer:
         uid = new_session(writer)
@@ -385,7 +404,8 @@ def test_newer_schema_is_refused_naming_both_versions(db: Path) -> None:
 def test_older_schema_is_migrated_or_refused(db: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     Store(db).close()
     monkeypatch.setattr(store_module, "SCHEMA_VERSION", SCHEMA_VERSION + 1)
-    with pytest.raises(StoreError, match=f"{db}: store schema version {SCHEMA_VERSION} is older .* cannot upgrade"):
+    older = f"{db}: store schema version {SCHEMA_VERSION} is older .* cannot upgrade"
+    with pytest.raises(StoreError, match=older):
         Store(db)
 
     def add_column(conn: sqlite3.Connection) -> None:
