@@ -82,11 +82,14 @@ def measure_run(steps: tuple[Step, ...], records: list[RunRecord], truths: list[
                 put("edge_mm", crossing["distance_mm"] - crossing["half_width_mm"], "truth")
                 put("stop_mm", crossing["distance_mm"], "truth")
         elif step.name == "turn":
-            put("turn_deg", result.get("heading_change_deg"), "robot")
-            put("angle_error_deg", float(wrap_deg(result.get("heading_change_deg", np.nan) - p["angle_deg"])), "robot")
-            if truth is not None:
-                put("turn_deg", truth["heading_change_deg"], "truth")
-                put("angle_error_deg", float(wrap_deg(truth["heading_change_deg"] - p["angle_deg"])), "truth")
+            for source, turned in (("robot", result.get("heading_change_deg")),
+                                   ("truth", truth["heading_change_deg"] if truth is not None else None)):
+                if turned is None:
+                    continue
+                error = float(wrap_deg(turned - p["angle_deg"]))
+                put("turn_deg", turned, source)
+                put("angle_error_deg", error, source)
+                put("angle_error_abs_deg", abs(error), source)
         elif step.name == "drive_straight":
             put("heading_drift_deg", result.get("heading_change_deg"), "robot")
             if truth is not None:

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from importlib.metadata import version
 from typing import Any
 
-from harness.analysis import Check, evaluate, iso9283_rp, summarize, verdict
+from harness.analysis import Check, evaluate, iso9283_rp, orientation_rp, summarize, verdict
 from harness.errors import HubRefused, InputError, LinkError, ProtocolError
 from harness.links import SimLink, require_sim
 from harness.measure import Measurement, measure_run, metrics_by_name
@@ -78,8 +78,10 @@ def case_statistics(runs: list[RunOutcome], judge_by: str) -> tuple[dict[str, di
                 block["stop_spread_2d_mm"] = {"rp": _finite(iso9283_rp(values)), "n": int(len(values))}
                 continue
             entry = summarize(values).as_dict()
-            if name.endswith(("_mm", "_deg")) and len(values) >= 2:
+            if len(values) >= 2 and name.endswith("_mm"):
                 entry["rp"] = _finite(iso9283_rp(values))
+            elif len(values) >= 2 and name.endswith("_deg"):
+                entry["rp"] = _finite(orientation_rp(values))  # ISO 9283 orientation: 3 x sd
             block[name] = entry
         if block:
             stats[source] = block

@@ -141,3 +141,98 @@ def test_real_links_say_they_are_not_available_yet(tmp_path, capsys):
     suite = write_suite(tmp_path, "[[cases]]\nname = 'x'\naction = 'stop'\n")
     assert main(["run", str(suite), "--link", "serial:/dev/ttyACM0", "--db", str(tmp_path / "r.sqlite")]) == 3
     assert "serial links are not available in this version yet" in capsys.readouterr().err
+
+
+def test_ctrl_c_keeps_finished_runs_and_the_session_resumes(tmp_path, capsys, monkeypatch):
+    from harness.session import Session
+
+    suite = write_suite(tmp_path, "repeat = 4\n[[cases]]\nname = 'turn'\naction = 'turn'\nparams = { angle_deg = 45 }\n")
+    db = tmp_path / "r.sqlite"
+    real_run = Session.run
+    calls = {"n": 0}
+
+    def interrupted(self, *args, **kwargs):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise KeyboardInterrupt  # Ctrl-C during the third run
+        return real_run(self, *args, **kwargs)
+
+    monkeypatch.setattr(Session, "run", interrupted)
+    assert main(["run", str(suite), "--db", str(db)]) == 130
+    err = capsys.readouterr().err
+    assert "--resume" in err
+    with Store(db, readonly=True) as store:
+        uid = store.resolve_session("latest")
+        assert store.session(uid)["status"] == "aborted"
+        assert list(store.runs(uid)["status"]) == ["pass", "pass", "aborted"]
+    monkeypatch.setattr(Session, "run", real_run)
+    assert main(["run", str(suite), "--db", str(db), "--resume", uid]) == 0
+    with Store(db, readonly=True) as store:
+        runs = store.runs(uid)
+        assert store.session(uid)["status"] == "finished"
+    assert sorted(runs[runs["status"] == "pass"]["repetition"]) == [1, 2, 3, 4]
+
+
+def test_sigkill_of_the_runner_loses_no_finished_run(tmp_path):
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    suite = write_suite(tmp_path, "repeat = 500\n[[cases]]\nname = 'follow'\naction = 'follow_line'\n"
+                                  "params = { distance_mm = 300 }\n")
+    db = tmp_path / "kill.sqlite"
+    child = subprocess.Popen([sys.executable, "-m", "harness", "run", str(suite), "--db", str(db)],
+                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    try:
+        deadline = time.monotonic() + 60
+        finished = 0
+        while finished < 3:
+            assert time.monotonic() < deadline and child.poll() is None
+            time.sleep(0.2)
+            if db.exists():
+                try:
+                    with Store(db, readonly=True) as store:
+                        runs = store.runs(store.resolve_session("latest"))
+                        finished = int((runs["status"] == "pass").sum())
+                except Exception:  # the runner may be between creating the file and its first session
+                    finished = 0
+        os.kill(child.pid, signal.SIGKILL)
+        child.wait(timeout=10)
+    finally:
+        if child.poll() is None:
+            child.kill()
+    with Store(db) as store:  # a writable open recovers what the killed runner left running
+        uid = store.resolve_session("latest")
+        runs = store.runs(uid)
+        assert store.session(uid)["status"] == "aborted"
+        assert set(runs["status"]) <= {"pass", "aborted"}
+        assert (runs["status"] == "aborted").sum() <= 1
+        passed = runs[runs["status"] == "pass"]
+        assert len(passed) >= finished
+        for run_id in passed["run_id"]:
+            assert len(store.telemetry(int(run_id))) > 10
+        assert set(store.measurements(uid)["run_status"]) <= {"pass", "aborted"}
+
+
+def test_operator_reset_prompts_and_skip_and_quit(tmp_path):
+    from harness.runner import Runner
+    from harness.suites import load_suite
+
+    suite = load_suite(write_suite(tmp_path, "repeat = 3\nreset = 'operator'\n[[cases]]\nname = 't'\n"
+                                             "action = 'turn'\nparams = { angle_deg = 30 }\n"))
+    answers = iter(["", "s", "q"])
+    prompts = []
+
+    def ask(prompt):
+        prompts.append(prompt)
+        return next(answers)
+
+    with Store(tmp_path / "op.sqlite") as store:
+        report = Runner(suite, store, ask=ask).run()
+        runs = store.runs(report.uid)
+    assert len(prompts) == 3 and "Enter to go, s to skip, q to quit" in prompts[0]
+    assert report.status == "aborted"
+    assert [r.status for r in report.cases[0].runs] == ["pass", "aborted"]
+    assert list(runs["status"]) == ["pass", "aborted", "aborted"]
