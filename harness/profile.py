@@ -12,7 +12,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -49,7 +49,6 @@ class RobotProfile:
     pivot_scale: float = 1.0
     watchdog_ms: int = 500
     source: str = ""
-    extra: dict[str, Any] = field(default_factory=dict)
 
     def geometry(self) -> dict[str, float]:
         """What the hub needs to turn millimetres and degrees into motor degrees."""

@@ -11,7 +11,6 @@ backward, the sensors lead from the rear and the correction flips.
 
 from hub_side.motion import (
     clamp,
-    deg_per_mm,
     pivot_motor_deg,
     ramp_speed_pct,
     spin_motor_deg,
