@@ -5,24 +5,23 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from collections import Counter
 from pathlib import Path
 from typing import Any
 
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
-from harness.analysis import evaluate, verdict
 from harness.errors import InputError, TrackproofError
-from harness.measure import Measurement
-from harness.report import print_report, write_json, write_junit
-from harness.runner import Runner, RunOutcome, case_statistics
-from harness.store import DEFAULT_DB, Store
-from harness.suites import load_suite, stored_cases
 from harness.links import SimLink
 from harness.profile import load_profile
+from harness.report import print_report, write_json, write_junit
+from harness.runner import Runner, judge_case, stored_outcomes
 from harness.session import Session
 from harness.sim import DEFAULT_COURSE, DEFAULT_PROFILE, SUITES_DIR, Simulation, truth_report, truth_snapshot
 from harness.sim.course import load_course
+from harness.store import DEFAULT_DB, Store
+from harness.suites import load_suite, stored_cases
 from hub_side.actions import BUILTINS
 from hub_side.motion import ParamError, check_params
 
@@ -100,7 +99,7 @@ def cmd_sim(args: argparse.Namespace) -> int:
         print(json.dumps(report, indent=2))
     else:
         print_sim_report(report)
-    return 0 if record.status in ("done",) else 1
+    return 0 if record.status == "done" else 1
 
 
 def print_sim_report(report: dict[str, Any]) -> None:
@@ -127,17 +126,12 @@ def print_sim_report(report: dict[str, Any]) -> None:
           f"channels: {', '.join(tel['channels'])}")
 
 
-def open_store(path: Path, readonly: bool = False) -> Store:
-    return Store(path, readonly=readonly)
-
-
 def cmd_run(args: argparse.Namespace) -> int:
     suite = load_suite(args.suite)
     console = Console(stderr=False, highlight=False)
-    with open_store(args.db) as store:
+    with Store(args.db) as store:
         resume = store.resolve_session(args.resume) if args.resume else None
-        runner = Runner(suite, store, link=args.link, repeat=args.repeat, seed=args.seed,
-                        on_progress=None)
+        runner = Runner(suite, store, link=args.link, repeat=args.repeat, seed=args.seed)
         with Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
                       TextColumn("{task.fields[counts]}"), TimeRemainingColumn(),
                       console=Console(stderr=True), transient=True) as progress:
@@ -173,7 +167,7 @@ def cmd_sessions(args: argparse.Namespace) -> int:
     if not args.db.exists():
         print(f"no sessions yet: {args.db} does not exist")
         return 0
-    with open_store(args.db, readonly=True) as store:
+    with Store(args.db, readonly=True) as store:
         frame = store.sessions()
     if frame.empty:
         print(f"no sessions in {args.db}")
@@ -187,7 +181,7 @@ def cmd_sessions(args: argparse.Namespace) -> int:
 
 
 def cmd_show(args: argparse.Namespace) -> int:
-    with open_store(args.db, readonly=True) as store:
+    with Store(args.db, readonly=True) as store:
         uid = store.resolve_session(args.session)
         info = store.session(uid)
         runs = store.runs(uid)
@@ -195,19 +189,14 @@ def cmd_show(args: argparse.Namespace) -> int:
     console = Console(highlight=False)
     console.print(f"session {uid}: suite {info['suite_name']} ({info['suite_path']}), robot {info['robot_id']}, "
                   f"link {info['link']}, seed {info['seed']}, {info['status']}, started {info['started_at']}")
+    # A resumed session may hold an aborted try of a repetition and its redo: the last one counts.
+    latest = {(o.case, o.repetition): o for o in stored_outcomes(runs, measurements)}
     for case, judge_by, expect in stored_cases(info["suite_text"]):
-        mine = runs[runs["case_name"] == case]
-        outcomes = []
-        for row in mine.itertuples():
-            rows = measurements[(measurements["case_name"] == case) & (measurements["repetition"] == row.repetition)]
-            outcomes.append(RunOutcome(case, int(row.repetition), row.status,
-                                       [Measurement(m.name, float(m.value), m.unit, m.source) for m in rows.itertuples()]))
-        stats, judged = case_statistics(outcomes, judge_by)
-        checks = evaluate(expect, judged)
-        passed = bool(outcomes) and all(o.status == "pass" for o in outcomes) and verdict(checks) == "pass"
-        console.print(f"\n{case}: {'PASS' if passed else 'FAIL'} ({len(outcomes)} runs: "
-                      + ", ".join(f"{(mine['status'] == s).sum()} {s}" for s in ("pass", "fail", "aborted", "link_lost")
-                                  if (mine["status"] == s).any()) + ")")
+        outcomes = [o for (name, _), o in sorted(latest.items()) if name == case]
+        stats, checks, case_verdict = judge_case(outcomes, judge_by, expect, len(outcomes))
+        counts = Counter(o.status for o in outcomes)
+        console.print(f"\n{case}: {case_verdict.upper()} ({len(outcomes)} runs: "
+                      + ", ".join(f"{n} {status}" for status, n in counts.items()) + ")")
         for source, block in stats.items():
             for name, s in block.items():
                 if "mean" in s:

@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from harness.analysis import rms, wrap_deg
+from harness.analysis import rms, unit_of, wrap_deg
 from harness.session import RunRecord
 from harness.suites import Step
 
@@ -27,13 +27,6 @@ class Measurement:
 
     def as_tuple(self) -> tuple[str, float, str, str]:
         return (self.name, self.value, self.unit, self.source)
-
-
-def unit_for(name: str) -> str:
-    for suffix, unit in (("_mm", "mm"), ("_deg", "deg"), ("_pct", "%"), ("_s", "s")):
-        if name.endswith(suffix):
-            return unit
-    return ""
 
 
 def measure_run(steps: tuple[Step, ...], records: list[RunRecord], truths: list[dict[str, Any] | None],
@@ -50,7 +43,7 @@ def measure_run(steps: tuple[Step, ...], records: list[RunRecord], truths: list[
         put("duration_s", result.get("duration_s"), "robot")
         if step.routine:
             for key, value in result.items():
-                if isinstance(value, (int, float)) and not isinstance(value, bool) and unit_for(key):
+                if isinstance(value, (int, float)) and not isinstance(value, bool) and unit_of(key):
                     put(key, value, "robot")
             continue
         p = step.params
@@ -94,7 +87,7 @@ def measure_run(steps: tuple[Step, ...], records: list[RunRecord], truths: list[
             put("heading_drift_deg", result.get("heading_change_deg"), "robot")
             if truth is not None:
                 put("heading_drift_deg", truth["heading_change_deg"], "truth")
-    return [Measurement(name, value, unit_for(name), source) for (name, source), value in found.items()]
+    return [Measurement(name, value, unit_of(name), source) for (name, source), value in found.items()]
 
 
 def metrics_by_name(runs: list[list[Measurement]], source: str) -> dict[str, np.ndarray]:

@@ -66,7 +66,7 @@ def write_junit(report: SessionReport, path: Path) -> None:
             if bad_runs:
                 lines.append(f"{len(bad_runs)} of {len(case.runs)} runs did not pass: "
                              + "; ".join(f"run {r.repetition} {r.status} {r.note}".strip() for r in bad_runs[:5]))
-            if len(case.runs) < case.case.repeat and report.status == "aborted":
+            if len(case.runs) < case.expected_runs:
                 lines.append(f"session aborted after {len(case.runs)} runs")
             failure = ET.SubElement(element, "failure", message=lines[0] if lines else "failed")
             failure.text = "\n".join(lines)

@@ -14,6 +14,8 @@ from dataclasses import dataclass, field
 from importlib.metadata import version
 from typing import Any
 
+import pandas as pd
+
 from harness.analysis import Check, evaluate, iso9283_rp, orientation_rp, summarize, verdict
 from harness.errors import HubRefused, InputError, LinkError, ProtocolError
 from harness.links import SimLink, require_sim
@@ -41,6 +43,7 @@ class RunOutcome:
 @dataclass
 class CaseReport:
     case: Case
+    expected_runs: int
     runs: list[RunOutcome] = field(default_factory=list)
     stats: dict[str, dict[str, Any]] = field(default_factory=dict)
     checks: list[Check] = field(default_factory=list)
@@ -88,6 +91,29 @@ def case_statistics(runs: list[RunOutcome], judge_by: str) -> tuple[dict[str, di
     return stats, judged
 
 
+def judge_case(runs: list[RunOutcome], judge_by: str, expect: dict[str, Any],
+               expected_runs: int) -> tuple[dict[str, dict[str, Any]], list[Check], str]:
+    """Statistics, checks and verdict of a case: it passes when every expected run finished and
+    passed and every expectation holds."""
+    stats, judged = case_statistics(runs, judge_by)
+    checks = evaluate(expect, judged)
+    complete = len(runs) == expected_runs
+    every_run_passed = bool(runs) and all(r.status == "pass" for r in runs)
+    return stats, checks, "pass" if complete and every_run_passed and verdict(checks) == "pass" else "fail"
+
+
+def stored_outcomes(runs: pd.DataFrame, measurements: pd.DataFrame) -> list[RunOutcome]:
+    """The runs of a stored session with their measurements, in the order they were recorded."""
+    by_run = {run_id: rows for run_id, rows in measurements.groupby("run_id")}
+    outcomes = []
+    for row in runs.itertuples():
+        rows = by_run.get(row.run_id)
+        found = [] if rows is None else [Measurement(m.name, float(m.value), m.unit, m.source)
+                                         for m in rows.itertuples()]
+        outcomes.append(RunOutcome(row.case_name, int(row.repetition), row.status, found, row.note))
+    return outcomes
+
+
 def _finite(x: float) -> float | None:
     return None if x != x else round(float(x), 6)
 
@@ -128,7 +154,7 @@ class Runner:
                 suite_name=suite.name, suite_path=str(suite.path), suite_text=suite.text,
                 profile_text=suite.profile_text, robot_id=suite.profile.id, link=self.link_spec,
                 seed=self.seed, tool_version=version("trackproof"))
-        reports = [CaseReport(case) for case in suite.cases]
+        reports = [CaseReport(case, self.repeats(case)) for case in suite.cases]
         total = sum(self.repeats(c) for c in suite.cases)
         counts = {"pass": 0, "fail": 0}
         started_wall, started_sim = time.perf_counter(), self.sim.t_us
@@ -153,24 +179,15 @@ class Runner:
             self.store.end_session(uid, "aborted")
             raise
         for report in reports:
-            self._judge(report)
+            report.stats, report.checks, report.verdict = judge_case(
+                report.runs, report.case.judge_by, report.case.expect, report.expected_runs)
         self.store.end_session(uid, status)
         return SessionReport(uid, suite, self.link_spec, self.seed, reports, status,
                              (self.sim.t_us - started_sim) / 1e6, time.perf_counter() - started_wall)
 
     def _finished_runs(self, uid: str) -> dict[tuple[str, int], RunOutcome]:
-        runs = self.store.runs(uid)
-        measurements = self.store.measurements(uid)
-        out: dict[tuple[str, int], RunOutcome] = {}
-        for row in runs.itertuples():
-            if row.status not in ("pass", "fail"):
-                continue
-            mine = measurements[(measurements["case_name"] == row.case_name)
-                                & (measurements["repetition"] == row.repetition)]
-            out[(row.case_name, int(row.repetition))] = RunOutcome(
-                row.case_name, int(row.repetition), row.status,
-                [Measurement(m.name, float(m.value), m.unit, m.source) for m in mine.itertuples()])
-        return out
+        outcomes = stored_outcomes(self.store.runs(uid), self.store.measurements(uid))
+        return {(o.case, o.repetition): o for o in outcomes if o.status in ("pass", "fail")}
 
     def _reset(self, case: Case, rep: int) -> None:
         if case.reset == "sim":
@@ -221,14 +238,6 @@ class Runner:
         self.store.finish_run(run_id, status, result, events, [m.as_tuple() for m in measurements], telemetry,
                               note=note)
         return RunOutcome(case.name, rep, status, measurements, note)
-
-    def _judge(self, report: CaseReport) -> None:
-        report.stats, judged = case_statistics(report.runs, report.case.judge_by)
-        report.checks = evaluate(report.case.expect, judged)
-        every_run_passed = bool(report.runs) and all(r.status == "pass" for r in report.runs)
-        expected = self.repeats(report.case)
-        complete = len(report.runs) == expected
-        report.verdict = "pass" if every_run_passed and complete and verdict(report.checks) == "pass" else "fail"
 
 
 class _Skip(Exception):

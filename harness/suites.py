@@ -34,7 +34,7 @@ from typing import Any
 from harness.analysis import validate_expectations
 from harness.errors import InputError
 from harness.profile import RobotProfile, load_profile
-from harness.tomlfile import Table, load_toml
+from harness.tomlfile import Table, parse_toml, read_text
 from hub_side.actions import BUILTINS
 from hub_side.motion import ParamError, check_params
 
@@ -76,7 +76,8 @@ class Suite:
 
 def load_suite(path: str | Path) -> Suite:
     path = Path(path)
-    t = load_toml(path)
+    text = read_text(path)
+    t = parse_toml(text, str(path))
     name = t.str("name", path.stem)
     robot_path = _relative(path, t.str("robot"))
     profile = load_profile(robot_path)
@@ -97,7 +98,7 @@ def load_suite(path: str | Path) -> Suite:
         if case_name in names[:i]:
             raise InputError(f"case name {case_name!r} is used twice", file=str(path), key=f"cases[{i}].name")
     t.done()
-    return Suite(name, path, path.read_text(encoding="utf-8"), profile,
+    return Suite(name, path, text, profile,
                  Path(profile.source).read_text(encoding="utf-8"), course_path, cases, line_width,
                  telemetry_hz, seed)
 
@@ -132,11 +133,10 @@ def _case(t: Table, profile: RobotProfile, repeat: int, reset: str) -> Case:
     expect: dict[str, Any] = {}
     if t.has("expect"):
         expect_t = t.table("expect")
-        expect = expect_t.data
+        expect = expect_t.take_all()
         problems = validate_expectations(expect)
         if problems:
             raise InputError(problems[0], file=t.file, key=expect_t.path)
-        expect_t._used.update(expect)
     t.done()
     return Case(name, steps, case_repeat, case_reset, judge_by, expect)
 
@@ -146,8 +146,7 @@ def _step(t: Table, profile: RobotProfile, own_table: bool = True) -> Step:
     if t.has("routine") and t.has("action"):
         raise t.error("action", "give action or routine, not both")
     params_t = t.table("params", {})
-    params = dict(params_t.data)
-    params_t._used.update(params)
+    params = params_t.take_all()
     if t.has("routine"):
         routine = t.str("routine")
         if own_table:

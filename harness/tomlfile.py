@@ -13,15 +13,17 @@ from harness.errors import InputError
 _MISSING: Any = object()
 
 
-def load_toml(path: str | Path) -> Table:
-    path = Path(path)
+def read_text(path: Path) -> str:
     try:
-        text = path.read_text(encoding="utf-8")
+        return path.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise InputError("file not found", file=str(path)) from None
     except (OSError, UnicodeDecodeError) as exc:
         raise InputError(f"cannot read: {exc}", file=str(path)) from None
-    return parse_toml(text, str(path))
+
+
+def load_toml(path: str | Path) -> Table:
+    return parse_toml(read_text(Path(path)), str(path))
 
 
 def parse_toml(text: str, file: str) -> Table:
@@ -115,6 +117,11 @@ class Table:
         if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
             raise self.error(key, "expected an array of tables ([[...]])")
         return [Table(v, self.file, f"{self.key_path(key)}[{i}]") for i, v in enumerate(value)]
+
+    def take_all(self) -> dict[str, Any]:
+        """Every key of this table as given, for free-form tables checked elsewhere."""
+        self._used.update(self.data)
+        return dict(self.data)
 
     def raw(self, key: str, default: Any = _MISSING) -> Any:
         return self._get(key, default)

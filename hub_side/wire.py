@@ -339,7 +339,7 @@ class TelemetryBatch:
             0,
             self.first_index & 0xFFFFFFFF,
             self.t0_us & 0xFFFFFFFF,
-            _clamp(int(battery_mv), 0, 0xFFFF),
+            min(0xFFFF, max(0, int(battery_mv))),
             self.count,
             self.n_sensors,
         )
@@ -378,7 +378,3 @@ def unpack_telemetry(body):
             )
         )
     return first_index, t0_us, battery_mv, n_sensors, samples
-
-
-def _clamp(value, low, high):
-    return low if value < low else high if value > high else value

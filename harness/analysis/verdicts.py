@@ -32,7 +32,7 @@ from typing import Any, Literal
 
 import numpy as np
 
-from .stats import iso9283_rp, orientation_rp, summarize
+from .stats import Summary, iso9283_rp, orientation_rp, summarize
 
 __all__ = ["CHECK_KINDS", "Check", "evaluate", "validate_expectations", "verdict", "unit_of"]
 
@@ -50,6 +50,12 @@ _NEVER_NEGATIVE = {"mean_abs_max": "|mean|", "sd_max": "an sd", "range_max": "a 
 _NON_NEGATIVE = set(_NEVER_NEGATIVE)
 _NEEDS_TWO = {"sd_max", "ci_within", "range_max"}
 _SPREAD_CHECKS = {"max", "min"}
+
+# Checks that bound one number from the summary: (how the text names it, how to get it).
+_UPPER_BOUNDS: dict[str, tuple[str, Callable[[Summary], float]]] = {
+    "mean_abs_max": ("|mean|", lambda s: abs(s.mean)),
+    "sd_max": ("sd", lambda s: s.sd),
+}
 
 _UNITS = (("_mm", "mm"), ("_deg", "deg"), ("_pct", "%"), ("_s", "s"))
 
@@ -246,18 +252,13 @@ def _decide(metric: str, check: str, limit: Any, values: np.ndarray,
         text = (f"{head}: mean {_with_unit(_fmt(s.mean, low, high), unit)} {tag} "
                 f"{'is inside' if ok else 'is outside'}")
         return Check(name, ok, s.mean, limit, text, n)
-    if check == "mean_abs_max":
-        lim, value = float(limit), abs(s.mean)
+    if check in _UPPER_BOUNDS:
+        label, pick = _UPPER_BOUNDS[check]
+        lim, value = float(limit), pick(s)
         ok = value <= lim
-        text = (f"{head}: |mean| {_with_unit(_fmt(value, lim), unit)} {tag} "
+        text = (f"{head}: {label} {_with_unit(_fmt(value, lim), unit)} {tag} "
                 f"{'is within' if ok else 'exceeds it'}")
         return Check(name, ok, value, limit, text, n)
-    if check == "sd_max":
-        lim = float(limit)
-        ok = s.sd <= lim
-        text = (f"{head}: sd {_with_unit(_fmt(s.sd, lim), unit)} {tag} "
-                f"{'is within' if ok else 'exceeds it'}")
-        return Check(name, ok, s.sd, limit, text, n)
     if check == "range_max":
         lim = float(limit)
         ok = s.range <= lim
