@@ -12,37 +12,13 @@ from collections.abc import Callable
 
 from harness.telemetry import decode_batches
 from hub_side import wire
+from recording import synthetic_batches
 
 SENSORS = ("left_outer", "left", "right", "right_outer")
 SAMPLES = 2_000_000
 PLAIN_SAMPLES = 200_000  # the plain decoder is far slower; keep its run to a few seconds
 SAMPLE_PERIOD_US = 5_000
 REPEATS = 5
-
-
-def build_bodies(n_samples: int) -> list[bytes]:
-    """Batch bodies for n_samples of a plausible line-following run."""
-    batch = wire.TelemetryBatch(len(SENSORS))
-    bodies = []
-    for i in range(n_samples):
-        if batch.full():
-            bodies.append(batch.body(7400 - i // 10_000))
-            batch.reset(i)
-        phase = i * 0.01
-        error = 12.0 * math.sin(phase)
-        batch.add(
-            i * SAMPLE_PERIOD_US,
-            i // 2,
-            i // 2 + i // 50,
-            (i * 0.003) % 360.0,
-            error,
-            40 + int(error),
-            40 - int(error),
-            (30 + int(error), 60, 55, 20),
-        )
-    if batch.count:
-        bodies.append(batch.body(7400))
-    return bodies
 
 
 def decode_plain(bodies: list[bytes]) -> int:
@@ -66,7 +42,7 @@ def best_rate(decode: Callable[[list[bytes]], int], bodies: list[bytes], n_sampl
 
 
 def main() -> None:
-    bodies = build_bodies(SAMPLES)
+    bodies = synthetic_batches(SAMPLES, len(SENSORS), SAMPLE_PERIOD_US)
     print("decode_samples_per_s: %d samples/s" % best_rate(decode_vectorised, bodies, SAMPLES))
     plain = bodies[: PLAIN_SAMPLES // wire.MAX_BATCH_SAMPLES]
     print("decode_plain_samples_per_s: %d samples/s" % best_rate(decode_plain, plain, PLAIN_SAMPLES))

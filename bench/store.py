@@ -17,7 +17,7 @@ from pathlib import Path
 
 from harness.store import Store
 from harness.telemetry import Telemetry, decode_batches
-from hub_side import wire
+from recording import synthetic_batches
 
 SENSORS = ("outer_left", "left", "centre", "right", "outer_right")
 RATE_HZ = 200
@@ -29,18 +29,7 @@ LOADS = 20
 
 def build_telemetry() -> Telemetry:
     """One 60 s line-following recording, as the host would have decoded it."""
-    period_us = 1_000_000 // RATE_HZ
-    batch = wire.TelemetryBatch(len(SENSORS))
-    bodies = []
-    for i in range(SAMPLES):
-        if batch.full():
-            bodies.append(batch.body(7400 - i // 1000))
-            batch.reset(i)
-        error = 12.0 * math.sin(i * 0.01)
-        batch.add(i * period_us, i // 2, i // 2 + i // 50, (i * 0.003) % 360.0, error,
-                  40 + int(error), 40 - int(error), (20, 30 + int(error), 50, 60 - int(error), 20))
-    bodies.append(batch.body(7300))
-    return decode_batches(bodies, SENSORS)
+    return decode_batches(synthetic_batches(SAMPLES, len(SENSORS), 1_000_000 // RATE_HZ), SENSORS)
 
 
 def main() -> None:
