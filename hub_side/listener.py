@@ -40,25 +40,25 @@ class ActionContext:
         self.error_pct = 0.0
         self._listener = listener
         self._mm_per_deg = 1.0 / deg_per_mm(listener.geometry)
-        self.enc_start = board.encoders_deg()
-        self.heading_start = board.heading_deg()
+        self.enc_start = listener.read_encoders()
+        self.heading_start = listener.read_heading()
 
     def set_power(self, left_pct, right_pct):
         self._listener.power = (left_pct, right_pct)
         self.board.set_power(left_pct, right_pct)
 
     def encoders(self):
-        return self.board.encoders_deg()
+        return self._listener.read_encoders()
 
     def heading(self):
-        return self.board.heading_deg()
+        return self._listener.read_heading()
 
     def reflectance(self, name):
-        return self.board.reflectance_pct(name)
+        return self._listener.read_reflectance(name)
 
     def distance_mm(self):
         """Signed travel of the axle midpoint since this action started."""
-        left, right = self.board.encoders_deg()
+        left, right = self._listener.read_encoders()
         start = self.enc_start
         return ((left - start[0]) + (right - start[1])) * 0.5 * self._mm_per_deg
 
@@ -82,10 +82,10 @@ class ActionContext:
         return out
 
     def measurements(self):
-        left, right = self.board.encoders_deg()
+        left, right = self._listener.read_encoders()
         return {
             "distance_mm": round(self.distance_mm(), 2),
-            "heading_change_deg": round(self.board.heading_deg() - self.heading_start, 2),
+            "heading_change_deg": round(self._listener.read_heading() - self.heading_start, 2),
             "enc_left_deg": left - self.enc_start[0],
             "enc_right_deg": right - self.enc_start[1],
             "duration_s": round(self.t_us / 1e6, 4),
@@ -114,6 +114,9 @@ class Listener:
         self._last_rx_us = board.ticks_us()
         self._gen = None
         self._batch = wire.TelemetryBatch(len(self.sensor_names))
+        self._enc = None
+        self._heading = None
+        self._refl_now = {}
         board.link_write(b"\x00")  # ends any partial frame the host may hold
 
     # ------------------------------------------------------------ registration
@@ -127,6 +130,36 @@ class Listener:
 
         return register
 
+    # ------------------------------------------------------------ readings
+    #
+    # Each reading is taken at most once per tick: the control step and the telemetry sample of
+    # the same tick share it, so telemetry shows exactly what the controller saw, and costs no
+    # second trip to the hardware.
+
+    def read_encoders(self):
+        enc = self._enc
+        if enc is None:
+            enc = self._enc = self.board.encoders_deg()
+        return enc
+
+    def read_heading(self):
+        heading = self._heading
+        if heading is None:
+            heading = self._heading = self.board.heading_deg()
+        return heading
+
+    def read_reflectance(self, name):
+        seen = self._refl_now
+        value = seen.get(name)
+        if value is None:
+            value = seen[name] = self.board.reflectance_pct(name)
+        return value
+
+    def _fresh_readings(self):
+        self._enc = None
+        self._heading = None
+        self._refl_now.clear()
+
     # ------------------------------------------------------------ the loop
 
     def serve(self):
@@ -138,6 +171,7 @@ class Listener:
         """One pass of the loop; returns how many microseconds until something is due."""
         board = self.board
         now = board.ticks_us()
+        self._fresh_readings()
         data = board.link_read()
         if data:
             for msg_type, seq, body in self._reader.feed(data):
@@ -188,7 +222,7 @@ class Listener:
         self._check_stall(ctx)
 
     def _check_stall(self, ctx):
-        enc = self.board.encoders_deg()
+        enc = self.read_encoders()
         pushing = abs(self.power[0]) >= _STALL_MIN_PCT or abs(self.power[1]) >= _STALL_MIN_PCT
         if enc != self._stall_enc or not pushing:
             self._stall_enc = enc
@@ -198,16 +232,16 @@ class Listener:
             self._finish("stalled", None)
 
     def _sample(self):
-        board = self.board
         ctx = self.contexts[-1]
         root = self.contexts[0]
-        left, right = board.encoders_deg()
+        left, right = self.read_encoders()
         refl = self._refl
         names = self.sensor_names
+        read = self.read_reflectance
         for i in range(len(names)):
-            refl[i] = min(255, max(0, int(board.reflectance_pct(names[i]))))
+            refl[i] = min(255, max(0, int(read(names[i]))))
         batch = self._batch
-        batch.add(self.t_us, left - root.enc_start[0], right - root.enc_start[1], board.heading_deg(),
+        batch.add(self.t_us, left - root.enc_start[0], right - root.enc_start[1], self.read_heading(),
                   ctx.error_pct, self.power[0], self.power[1], refl)
         self._sample_index += 1
         if batch.full() or batch.span_us(self.t_us) >= _BATCH_MAX_SPAN_US:
