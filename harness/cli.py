@@ -13,10 +13,10 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
 from harness.errors import InputError, TrackproofError
-from harness.links import SimLink
+from harness.links import SimLink, parse_faults
 from harness.profile import load_profile
 from harness.report import print_report, write_json, write_junit
-from harness.runner import Runner, judge_case, stored_outcomes
+from harness.runner import SAFETY_NOTE, OperatorQuit, Runner, judge_case, stored_outcomes
 from harness.session import Session
 from harness.sim import DEFAULT_COURSE, DEFAULT_PROFILE, SUITES_DIR, Simulation, truth_report, truth_snapshot
 from harness.sim.course import load_course
@@ -26,10 +26,6 @@ from hub_side.actions import BUILTINS
 from hub_side.motion import ParamError, check_params
 
 DEMO_SUITE = SUITES_DIR / "demo.toml"
-
-SAFETY_NOTE = ("Safety: a real robot moves on its own. Keep fingers and loose cables clear, run it "
-               "on the floor or a mat with edges, never leave lithium batteries charging or running "
-               "unattended, and follow your venue's and the manufacturer's rules.")
 
 
 def parse_value(text: str) -> Any:
@@ -70,6 +66,10 @@ def checked_action_params(action: str, params: dict[str, Any], sensor_names: tup
 
 
 def cmd_sim(args: argparse.Namespace) -> int:
+    if args.action == "serve":
+        from harness.sim.serve import serve_on_pty
+
+        return serve_on_pty(args)
     profile = load_profile(args.robot or DEFAULT_PROFILE)
     course = load_course(args.course or DEFAULT_COURSE)
     params = profile.action_defaults(args.action, parse_assignments(args.params))
@@ -131,7 +131,9 @@ def cmd_run(args: argparse.Namespace) -> int:
     console = Console(stderr=False, highlight=False)
     with Store(args.db) as store:
         resume = store.resolve_session(args.resume) if args.resume else None
-        runner = Runner(suite, store, link=args.link, repeat=args.repeat, seed=args.seed)
+        faults = parse_faults(args.link_faults) if args.link_faults else None
+        runner = Runner(suite, store, link=args.link, faults=faults, repeat=args.repeat, seed=args.seed,
+                        confirm=not args.yes)
         with Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
                       TextColumn("{task.fields[counts]}"), TimeRemainingColumn(),
                       console=Console(stderr=True), transient=True) as progress:
@@ -142,16 +144,25 @@ def cmd_run(args: argparse.Namespace) -> int:
                                 counts=f"{index - fails} pass {fails} fail")
 
             runner.on_progress = show
-            report = runner.run(resume=resume)
+            try:
+                report = runner.run(resume=resume)
+            except OperatorQuit:
+                print("trackproof: not started; nothing moved", file=sys.stderr)
+                return 130
     print_report(report, console)
     if args.json:
         write_json(report, args.json)
     if args.junit:
         write_junit(report, args.junit)
+    resume_hint = f"  trackproof run {args.suite} --db {args.db} --link {args.link} --resume {report.uid}"
     if report.status == "aborted":
-        print(f"trackproof: interrupted; finished runs are kept in {args.db}. Resume with:\n"
-              f"  trackproof run {args.suite} --db {args.db} --resume {report.uid}", file=sys.stderr)
+        print(f"trackproof: interrupted; finished runs are kept in {args.db}. Resume with:\n{resume_hint}",
+              file=sys.stderr)
         return 130
+    if report.status == "link_lost":
+        print(f"trackproof: error: {report.note}\nFinished runs are kept in {args.db}. Resume with:\n"
+              f"{resume_hint}", file=sys.stderr)
+        return 3
     return 0 if report.passed else 1
 
 
@@ -160,6 +171,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
           "simulated harbour run mat,\n20 runs per case, and every run is stored in "
           f"{args.db}. No hardware needed.\n{SAFETY_NOTE}\n")
     args.suite, args.link, args.repeat, args.seed, args.resume = DEMO_SUITE, "sim", None, None, None
+    args.link_faults, args.yes = None, True
     return cmd_run(args)
 
 
@@ -209,6 +221,41 @@ def cmd_show(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_links(args: argparse.Namespace) -> int:
+    from harness.links.serial_port import pick_port, serial_ports
+
+    ports = serial_ports()
+    if not ports:
+        print("no USB serial ports found (is the hub plugged in, with a data cable?)")
+    for port in ports:
+        mark = "likely hub" if port.likely_hub else ""
+        print(f"{port.device:24} {port.usb_id:9} {port.serial_number or '-':20} {port.description}  {mark}")
+    if ports:
+        chosen = pick_port(ports)
+        print(f"would pick: --link serial:{chosen.device}" if chosen else
+              "would pick: none (not exactly one likely hub); name the port with --link serial:PORT")
+    if args.ble:
+        from harness.links.ble import scan_hubs
+
+        hubs = scan_hubs(args.timeout)
+        if not hubs:
+            print(f"no Bluetooth LE hub advertising the trackproof service within {args.timeout:g} s")
+        for hub in hubs:
+            print(f"{hub.address:20} {hub.rssi if hub.rssi is not None else '-':>5} dBm  {hub.name or '-'}")
+        if hubs:
+            best = hubs[0]
+            print(f"would pick: --link ble:{best.name or best.address} (strongest signal)" if len(hubs) == 1 else
+                  "would pick: none (more than one hub in range); name one with --link ble:NAME_OR_ADDRESS")
+    return 0
+
+
+def cmd_hub_install(args: argparse.Namespace) -> int:
+    from harness.hub_install import install_hub
+
+    install_hub(args.port, main_example=args.main_example)
+    return 0
+
+
 def _num(value: Any) -> str:
     return "-" if value is None else f"{value:.3f}"
 
@@ -223,7 +270,10 @@ def build_parser() -> argparse.ArgumentParser:
     sim = sub.add_parser("sim", help="run one action on the simulated robot",
                          description="Run one action on the simulated robot and print its result, "
                                      "the truth, and a telemetry summary.")
-    sim.add_argument("action", metavar="ACTION", help=f"one of: {', '.join(sorted(BUILTINS))}")
+    sim.add_argument("action", metavar="ACTION",
+                     help=f"one of: {', '.join(sorted(BUILTINS))}; or serve: run the simulated robot "
+                          "behind a new pseudo-terminal until stopped, for any suite to use over "
+                          "--link serial:PORT")
     sim.add_argument("params", metavar="key=value", nargs="*", help="action parameters")
     sim.add_argument("--course", type=Path, help=f"course file (default {DEFAULT_COURSE.name})")
     sim.add_argument("--robot", type=Path, help=f"robot profile (default {DEFAULT_PROFILE.name})")
@@ -231,6 +281,8 @@ def build_parser() -> argparse.ArgumentParser:
     sim.add_argument("--telemetry-hz", type=int, default=100, help="telemetry rate, 0..500 (default 100)")
     sim.add_argument("--telemetry-csv", type=Path, metavar="PATH", help="write the telemetry as CSV")
     sim.add_argument("--json", action="store_true", help="print one JSON object")
+    sim.add_argument("--baud", type=int, help="serve: pace the hub's output like a UART at this baud rate")
+    sim.add_argument("--secret", help="serve: the hub refuses hosts that cannot prove this shared secret")
     sim.set_defaults(func=cmd_sim)
 
     def add_outputs(p: argparse.ArgumentParser) -> None:
@@ -243,7 +295,11 @@ def build_parser() -> argparse.ArgumentParser:
                                      "Exit codes: 0 all cases pass, 1 a case failed, 2 bad input, "
                                      "3 link failure.")
     run.add_argument("suite", type=Path, metavar="SUITE")
-    run.add_argument("--link", default="sim", help="sim, sim:COURSE, serial:PORT or ble:NAME_OR_ADDRESS")
+    run.add_argument("--link", default="sim", help="sim, sim:COURSE, serial:PORT[@BAUD] or ble:NAME_OR_ADDRESS")
+    run.add_argument("--link-faults", metavar="SPEC",
+                     help="damage the link on purpose, e.g. corrupt=0.05,drop=0.02 (see docs/links.md)")
+    run.add_argument("--yes", action="store_true",
+                     help="start on real hardware without asking (unattended runs; the robot still moves)")
     run.add_argument("--repeat", type=int, help="runs per case (overrides the suite)")
     run.add_argument("--seed", type=int, help="simulator seed (overrides the suite)")
     run.add_argument("--resume", metavar="SESSION", help="continue an interrupted session")
@@ -259,6 +315,17 @@ def build_parser() -> argparse.ArgumentParser:
     show.add_argument("session", metavar="SESSION", help="session id, a unique prefix, or latest")
     show.add_argument("--db", type=Path, default=Path(DEFAULT_DB))
     show.set_defaults(func=cmd_show)
+    links = sub.add_parser("links", help="list USB serial ports (and Bluetooth LE hubs) a hub may be on")
+    links.add_argument("--ble", action="store_true", help="also scan for Bluetooth LE hubs")
+    links.add_argument("--timeout", type=float, default=5.0, help="Bluetooth LE scan time in seconds (default 5)")
+    links.set_defaults(func=cmd_links)
+    hub = sub.add_parser("hub", help="work on the hub itself")
+    hub_sub = hub.add_subparsers(dest="hub_command", required=True)
+    install = hub_sub.add_parser("install", help="copy hub_side to a MicroPython board over USB")
+    install.add_argument("port", metavar="PORT", help="the board's serial port, e.g. /dev/ttyACM0 or COM3")
+    install.add_argument("--main-example", action="store_true",
+                         help="also write the example main.py (replaces the board's main.py)")
+    install.set_defaults(func=cmd_hub_install)
     return parser
 
 

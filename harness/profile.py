@@ -7,7 +7,7 @@
     [follow.forward] / [follow.backward]      # sensors (pair listed left first, or one edge
                                               # sensor), edge, kp, kd, speed_pct
     [junctions] left, right, threshold_pct    # sensors that see side branches
-    [link] kind, watchdog_ms
+    [link] watchdog_ms, baud, secret, reconnects, scan_timeout_s
 """
 
 from __future__ import annotations
@@ -48,6 +48,10 @@ class RobotProfile:
     spin_scale: float = 1.0
     pivot_scale: float = 1.0
     watchdog_ms: int = 500
+    baud: int = 115200  # serial links; a link string's @BAUD wins
+    secret: str = ""  # shared with the hub: it refuses hosts that cannot prove it
+    reconnects: int = 3  # tries to get a lost link back before giving up
+    scan_timeout_s: float = 10.0  # Bluetooth LE: how long to look for the hub
     source: str = ""
 
     def geometry(self) -> dict[str, float]:
@@ -140,10 +144,15 @@ def profile_from_table(t: Table) -> RobotProfile:
         junction_right = sensor_ref(j, "right", "")
         threshold = j.num("threshold_pct", 60.0, low=1, high=99)
         j.done()
-    watchdog_ms = 500
+    link_settings: dict[str, Any] = {}
     if t.has("link"):
         link = t.table("link")
-        watchdog_ms = link.int("watchdog_ms", 500, low=50, high=60000)
+        link_settings["watchdog_ms"] = link.int("watchdog_ms", 500, low=50, high=60000)
+        if link.has("baud"):
+            link_settings["baud"] = link.int("baud", low=2400, high=4_000_000)
+        link_settings["secret"] = link.str("secret", "")
+        link_settings["reconnects"] = link.int("reconnects", 3, low=0, high=100)
+        link_settings["scan_timeout_s"] = link.num("scan_timeout_s", 10.0, low=0.5, high=300)
         link.done()
     t.done()
     return RobotProfile(
@@ -155,7 +164,7 @@ def profile_from_table(t: Table) -> RobotProfile:
         junction_left=junction_left,
         junction_right=junction_right,
         threshold_pct=threshold,
-        watchdog_ms=watchdog_ms,
         source=t.file,
+        **link_settings,
         **scales,
     )

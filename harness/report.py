@@ -56,7 +56,7 @@ def write_junit(report: SessionReport, path: Path) -> None:
     """JUnit XML: one testsuite per session, one testcase per case, failures with the numbers."""
     failures = sum(c.verdict != "pass" for c in report.cases)
     suite = ET.Element("testsuite", name=report.suite.name, tests=str(len(report.cases)),
-                       failures=str(failures), errors="0", time=f"{report.sim_seconds:.3f}")
+                       failures=str(failures), errors="0", time=f"{report.link_seconds:.3f}")
     for case in report.cases:
         element = ET.SubElement(suite, "testcase", classname=f"trackproof.{report.suite.profile.id}",
                                 name=case.case.name)
@@ -108,4 +108,4 @@ def print_report(report: SessionReport, console: Console) -> None:
         console.print()
     verdicts = [c.verdict for c in report.cases]
     console.print(f"session {report.uid}: {verdicts.count('pass')} of {len(verdicts)} cases passed"
-                  f" ({report.status}; {report.sim_seconds:.0f} s of robot time in {report.wall_seconds:.1f} s)")
+                  f" ({report.status}; {report.link_seconds:.0f} s of robot time in {report.wall_seconds:.1f} s)")

@@ -4,10 +4,17 @@ Between runs the robot is reset as the case says: `sim` re-places the simulated 
 placement error), `operator` asks the person at the mat, `routine:NAME` has the robot drive itself
 back. Ctrl-C stops the robot first (the session does that), marks the run `aborted`, keeps every
 finished run, and the session can be resumed with --resume.
+
+When the link is lost, the run is stored as `link_lost` (with whatever the hub reported), the
+runner opens a new link and carries on with the next run; after `reconnects` failed tries it
+stops with status `link_lost`. A run whose telemetry stays incomplete after asking the hub to
+send it again is `link_lost` too, so no stored run silently misses data. Before the first run
+on real hardware, the runner says what the robot is about to do and waits for a yes.
 """
 
 from __future__ import annotations
 
+import random
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -18,7 +25,7 @@ import pandas as pd
 
 from harness.analysis import Check, evaluate, iso9283_rp, orientation_rp, summarize, verdict
 from harness.errors import HubRefused, InputError, LinkError, ProtocolError
-from harness.links import SimLink, require_sim
+from harness.links import Faults, FaultyLink, Link, LinkSpec, SimLink, parse_link
 from harness.measure import Measurement, measure_run, metrics_by_name
 from harness.session import RunRecord, Session
 from harness.sim import Simulation, truth_report, truth_snapshot
@@ -27,8 +34,13 @@ from harness.store import Store
 from harness.suites import Case, Suite
 
 
+SAFETY_NOTE = ("Safety: a real robot moves on its own. Keep fingers and loose cables clear, run it "
+               "on the floor or a mat with edges, never leave lithium batteries charging or running "
+               "unattended, and follow your venue's and the manufacturer's rules.")
+
+
 class OperatorQuit(Exception):
-    """The operator chose to quit at a reset prompt."""
+    """The operator chose to quit at a prompt."""
 
 
 @dataclass
@@ -57,8 +69,9 @@ class SessionReport:
     link: str
     seed: int
     cases: list[CaseReport]
-    status: str  # finished or aborted
-    sim_seconds: float = 0.0
+    status: str  # finished, aborted (Ctrl-C or the operator) or link_lost (reconnects failed)
+    note: str = ""
+    link_seconds: float = 0.0  # on the link's clock: virtual time on the simulated link
     wall_seconds: float = 0.0
 
     @property
@@ -118,32 +131,128 @@ def _finite(x: float) -> float | None:
     return None if x != x else round(float(x), 6)
 
 
+def open_real_link(spec: LinkSpec, suite: Suite) -> Link:
+    """A serial or Bluetooth LE link to the hub, with the profile's settings."""
+    profile = suite.profile
+    if spec.kind == "serial":
+        from harness.links.serial_port import SerialLink
+
+        return SerialLink(spec.target, spec.baud or profile.baud)
+    from harness.links.ble import BleLink
+
+    return BleLink(spec.target, scan_timeout_s=profile.scan_timeout_s)
+
+
 class Runner:
-    def __init__(self, suite: Suite, store: Store, *, link: str = "sim", repeat: int | None = None,
-                 seed: int | None = None, ask: Callable[[str], str] = input,
-                 on_progress: Callable[[str, int, int, int, int], None] | None = None) -> None:
+    def __init__(self, suite: Suite, store: Store, *, link: str = "sim", faults: Faults | None = None,
+                 repeat: int | None = None, seed: int | None = None, ask: Callable[[str], str] = input,
+                 confirm: bool = True,
+                 on_progress: Callable[[str, int, int, int, int], None] | None = None,
+                 open_link: Callable[[LinkSpec, Suite], Link] = open_real_link) -> None:
         self.suite = suite
         self.store = store
-        self.link_spec = link
+        self.link_name = link
+        self.stored_link_name = f"{link} with faults {faults}" if faults else link
+        self.spec = parse_link(link)
+        self.faults = faults
         self.repeat = repeat
         self.seed = seed if seed is not None else (suite.seed if suite.seed is not None else 0)
         self.ask = ask
+        self.confirm = confirm
         self.on_progress = on_progress
-        course_arg = require_sim(link)
-        course_path = course_arg or suite.course_path
-        if course_path is None:
-            raise InputError("the simulated link needs a course: set course in the suite or use --link sim:COURSE",
-                             file=str(suite.path), key="course")
-        self.sim = Simulation(load_course(course_path), suite.profile, seed=self.seed)
-        self.session = Session(SimLink(self.sim), watchdog_ms=suite.profile.watchdog_ms,
-                               session_id=f"run-{self.seed}")
+        self._open_real_link = open_link
+        self._fault_rng = random.Random(faults.seed if faults else 0)
+        self._connections = 0
+        self.sim: Simulation | None = None
+        if self.spec.kind == "sim":
+            course_path = self.spec.target or suite.course_path
+            if course_path is None:
+                raise InputError("the simulated link needs a course: set course in the suite or use --link sim:COURSE",
+                                 file=str(suite.path), key="course")
+            self.sim = Simulation(load_course(course_path), suite.profile, seed=self.seed)
+        else:
+            for case in suite.cases:
+                if case.judge_by == "truth":
+                    raise InputError(f"case {case.name!r} is judged by truth, which only the simulated link "
+                                     "knows; use judge_by = \"robot\" or --link sim", file=str(suite.path),
+                                     key="judge_by")
+        self.session: Session | None = None
+
+    # ------------------------------------------------------------ connecting
+
+    def _connect(self) -> Session:
+        """A new link and a hello on it; LinkError or ProtocolError if that fails."""
+        profile = self.suite.profile
+        self._connections += 1
+        link = SimLink(self.sim) if self.sim is not None else self._open_real_link(self.spec, self.suite)
+        if self.faults is not None:
+            link = FaultyLink(link, self.faults, random.Random(self._fault_rng.getrandbits(32)))
+        session = Session(link, watchdog_ms=profile.watchdog_ms, secret=profile.secret or None,
+                          session_id=f"run-{self.seed}-{self._connections}")
+        try:
+            session.hello(geometry=profile.geometry(), expect_robot_id=profile.id)
+        except BaseException:
+            session.close()
+            raise
+        return session
+
+    def _reconnect(self, why: Exception) -> Session:
+        """Close the lost link and open a new one, a bounded number of times."""
+        if self.session is not None:
+            self.session.close()
+            self.session = None
+        tries = self.suite.profile.reconnects
+        last: Exception = why
+        for attempt in range(tries):
+            if self.sim is None:
+                time.sleep(min(4.0, 0.5 * 2**attempt))  # give a rebooting hub or a radio a moment
+            try:
+                return self._connect()
+            except LinkError as exc:
+                last = exc
+        raise LinkError(f"link lost and {tries} tries to reconnect failed; last: {last}")
+
+    def _check_hub(self, session: Session) -> None:
+        """What the suite needs from this hub: its resets, and a yes from the operator on real hardware."""
+        hub = session.hub
+        assert hub is not None
+        for case in self.suite.cases:
+            if case.reset == "sim" and self.sim is None and "sim_reset" not in hub.routines:
+                raise InputError(f"case {case.name!r} resets with 'sim', but {hub.robot_id} is not a simulated "
+                                 "hub; use reset = \"operator\" or \"routine:NAME\"",
+                                 file=str(self.suite.path), key="reset")
+            if case.reset.startswith("routine:") and case.reset[8:] not in hub.routines:
+                raise InputError(f"case {case.name!r} resets with routine {case.reset[8:]!r}, which hub "
+                                 f"{hub.robot_id} does not have (it has: {', '.join(hub.routines) or 'none'})",
+                                 file=str(self.suite.path), key="reset")
+        if self.confirm and not hub.board.get("simulated"):
+            answer = self.ask(self.plan(hub.robot_id) + "\nType yes to start: ")
+            if answer.strip().lower() not in ("y", "yes"):
+                raise OperatorQuit()
+
+    def plan(self, robot_id: str) -> str:
+        """What the robot is about to do, in words, for the operator's confirmation."""
+        lines = [f"About to run suite {self.suite.name!r} on robot {robot_id} over {self.link_name}:"]
+        for case in self.suite.cases:
+            steps = "; then ".join(f"{s.name} " + " ".join(f"{k}={v}" for k, v in s.params.items())
+                                   for s in case.steps)
+            lines.append(f"  {case.name}: {self.repeats(case)} x {steps} (reset: {case.reset})")
+        lines.append("The robot will move by itself. Stop it at any time with Ctrl-C"
+                     " (or the hub's stop button, if it has one).")
+        lines.append(SAFETY_NOTE)
+        return "\n".join(lines)
 
     def repeats(self, case: Case) -> int:
         return self.repeat if self.repeat is not None else case.repeat
 
     def run(self, resume: str | None = None) -> SessionReport:
         suite = self.suite
-        self.session.hello(geometry=suite.profile.geometry(), expect_robot_id=suite.profile.id)
+        self.session = self._connect()
+        try:
+            self._check_hub(self.session)
+        except BaseException:
+            self.session.close()
+            raise
         done: dict[tuple[str, int], RunOutcome] = {}
         if resume is not None:
             uid = resume
@@ -152,13 +261,13 @@ class Runner:
         else:
             uid = self.store.begin_session(
                 suite_name=suite.name, suite_path=str(suite.path), suite_text=suite.text,
-                profile_text=suite.profile_text, robot_id=suite.profile.id, link=self.link_spec,
+                profile_text=suite.profile_text, robot_id=suite.profile.id, link=self.stored_link_name,
                 seed=self.seed, tool_version=version("trackproof"))
         reports = [CaseReport(case, self.repeats(case)) for case in suite.cases]
         total = sum(self.repeats(c) for c in suite.cases)
         counts = {"pass": 0, "fail": 0}
-        started_wall, started_sim = time.perf_counter(), self.sim.t_us
-        status = "finished"
+        started_wall, started_link = time.perf_counter(), self.session.link.now()
+        status, note = "finished", ""
         try:
             index = 0
             for report in reports:
@@ -167,7 +276,13 @@ class Runner:
                     index += 1
                     outcome = done.get((case.name, rep))
                     if outcome is None:
-                        outcome = self._one_run(uid, case, rep)
+                        try:
+                            outcome = self._one_run(uid, case, rep)
+                        except LinkError as lost:
+                            outcome = RunOutcome(case.name, rep, "link_lost", [], str(lost))
+                            report.runs.append(outcome)
+                            self.session = self._reconnect(lost)
+                            continue
                     report.runs.append(outcome)
                     if outcome.status in counts:
                         counts[outcome.status] += 1
@@ -175,23 +290,27 @@ class Runner:
                         self.on_progress(case.name, rep, index, total, counts["fail"])
         except (KeyboardInterrupt, OperatorQuit):
             status = "aborted"
-        except (LinkError, ProtocolError):
-            self.store.end_session(uid, "aborted")
-            raise
+        except (LinkError, ProtocolError) as exc:
+            status, note = "link_lost", str(exc)
+        link_seconds = self.session.link.now() - started_link if self.session is not None else 0.0
+        if self.session is not None:
+            self.session.close()
         for report in reports:
             report.stats, report.checks, report.verdict = judge_case(
                 report.runs, report.case.judge_by, report.case.expect, report.expected_runs)
-        self.store.end_session(uid, status)
-        return SessionReport(uid, suite, self.link_spec, self.seed, reports, status,
-                             (self.sim.t_us - started_sim) / 1e6, time.perf_counter() - started_wall)
+        self.store.end_session(uid, "finished" if status == "finished" else "aborted")
+        return SessionReport(uid, suite, self.link_name, self.seed, reports, status, note,
+                             link_seconds, time.perf_counter() - started_wall)
 
     def _finished_runs(self, uid: str) -> dict[tuple[str, int], RunOutcome]:
         outcomes = stored_outcomes(self.store.runs(uid), self.store.measurements(uid))
         return {(o.case, o.repetition): o for o in outcomes if o.status in ("pass", "fail")}
 
     def _reset(self, case: Case, rep: int) -> None:
-        if case.reset == "sim":
+        if case.reset == "sim" and self.sim is not None:
             self.sim.reset()
+        elif case.reset == "sim":
+            self._reset_routine("sim_reset")
         elif case.reset == "operator":
             answer = self.ask(f"[{case.name} run {rep}] put the robot at the start; Enter to go, s to skip, q to quit: ")
             if answer.strip().lower() == "q":
@@ -199,9 +318,13 @@ class Runner:
             if answer.strip().lower() == "s":
                 raise _Skip()
         else:
-            record = self.session.run(case.reset.split(":", 1)[1], {})
-            if record.status != "done":
-                raise _Skip(f"reset routine ended {record.status}")
+            self._reset_routine(case.reset.split(":", 1)[1])
+
+    def _reset_routine(self, name: str) -> None:
+        assert self.session is not None
+        record = self.session.run(name, {})
+        if record.status != "done":
+            raise _Skip(f"reset routine ended {record.status}")
 
     def _one_run(self, uid: str, case: Case, rep: int) -> RunOutcome:
         run_id = self.store.begin_run(uid, case.name, rep, {"steps": [s.params for s in case.steps]})
@@ -214,18 +337,23 @@ class Runner:
                 self.store.finish_run(run_id, "aborted", {}, [], [], None, note=f"skipped at reset {skip}".strip())
                 return RunOutcome(case.name, rep, "aborted", [], "skipped")
             status, note = "pass", ""
+            session = self.session
+            assert session is not None
             for step in case.steps:
-                before = truth_snapshot(self.sim)
+                before = truth_snapshot(self.sim) if self.sim is not None else None
                 try:
-                    record = self.session.run(step.name, step.params, telemetry_hz=self.suite.telemetry_hz)
+                    record = session.run(step.name, step.params, telemetry_hz=self.suite.telemetry_hz)
                 except HubRefused as exc:
                     status, note = "fail", str(exc)
                     break
                 records.append(record)
-                truths.append(truth_report(before, truth_snapshot(self.sim)))
+                truths.append(truth_report(before, truth_snapshot(self.sim)) if before is not None else None)
                 if record.status != "done":
                     status, note = "fail", f"{step.name} ended {record.status}"
                     break
+            missing = sum(r.telemetry.dropped for r in records)
+            if missing:
+                status, note = "link_lost", f"telemetry incomplete: {missing} samples lost on the link"
         except BaseException as exc:
             link_lost = isinstance(exc, (LinkError, ProtocolError))
             self.store.finish_run(run_id, "link_lost" if link_lost else "aborted", {}, [], [], None,

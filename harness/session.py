@@ -1,21 +1,27 @@
 """The host side of one conversation with a hub over a link.
 
-hello() checks the protocol version and learns the robot; run() starts an action or routine,
-keeps the hub's watchdog fed, and collects telemetry, events and the result. Commands are
-retransmitted with the same sequence number when no answer comes, which the hub recognises, so
-nothing starts twice. On Ctrl-C or any error during a run, the robot is told to stop first.
+hello() checks the protocol version, proves the shared secret if the profile has one, and checks
+that the right robot answered; run() starts an action or routine, keeps the hub's watchdog fed,
+and collects telemetry, events and the result, asking the hub to send lost telemetry batches
+again. Commands are retransmitted with the same sequence number when no answer comes, which the
+hub recognises, so nothing starts twice. On Ctrl-C or any error during a run, the robot is told
+to stop first.
 """
 
 from __future__ import annotations
 
 import secrets
+
+import numpy as np
 from dataclasses import dataclass, field
 from typing import Any
 
 from harness.errors import HubRefused, LinkError, ProtocolError
-from harness.links import Link
+from harness.links.base import Link
 from harness.telemetry import Telemetry, decode_batches
-from hub_side import wire
+from hub_side import auth, wire
+
+_AUTH_TRIES = 3
 
 
 @dataclass(frozen=True)
@@ -58,8 +64,11 @@ class _Inbox:
 
 class Session:
     def __init__(self, link: Link, *, watchdog_ms: int = 500, reply_timeout_s: float = 0.5,
-                 retries: int = 4, session_id: str | None = None) -> None:
+                 retries: int = 4, session_id: str | None = None, secret: str | None = None,
+                 resend_telemetry: bool = True) -> None:
         self.link = link
+        self.secret = secret
+        self.resend_telemetry = resend_telemetry
         self.watchdog_ms = watchdog_ms
         self.reply_timeout_s = reply_timeout_s
         self.retries = retries
@@ -82,15 +91,32 @@ class Session:
         if geometry:
             body["geometry"] = geometry
         inbox = self._inbox
-        inbox.hub_info = None
-        kind, reply = self._command(wire.HELLO, body, lambda: inbox.hub_info is not None)
+        for _ in range(_AUTH_TRIES):
+            inbox.hub_info = None
+            kind, reply = self._command(wire.HELLO, body, lambda: inbox.hub_info is not None)
+            if kind != wire.REFUSE or reply.get("code") != "auth" or not self.secret:
+                break
+            # The hub holds a secret: answer its challenge and say hello again.
+            challenge = str(reply.get("challenge"))
+            body = dict(body, challenge=challenge,
+                        auth=auth.proof(self.secret, "host", challenge, self.session_id))
         if kind == wire.REFUSE:
-            if reply.get("code") == "protocol":
+            code = reply.get("code")
+            if code == "protocol":
                 raise ProtocolError(f"protocol mismatch: host speaks {self.protocol_version}, "
                                     f"hub speaks {reply.get('hub_proto')} ({reply.get('text')})")
-            raise HubRefused(str(reply.get("code")), str(reply.get("text")))
+            if code == "auth":
+                raise ProtocolError("the hub wants proof of a shared secret: set [link] secret in the robot profile")
+            if code == "auth_failed":
+                raise ProtocolError("the hub refused our proof: the secret in the robot profile is not this hub's")
+            raise HubRefused(str(code), str(reply.get("text")))
         info = inbox.hub_info
         assert info is not None
+        if self.secret:
+            challenge = str(body.get("challenge", ""))
+            if not auth.same(info.get("proof"), auth.proof(self.secret, "hub", challenge, self.session_id)):
+                raise ProtocolError(f"robot {info.get('robot_id')!r} answered without proof of the shared "
+                                    "secret: not the robot this profile describes")
         self.hub = HubInfo(
             robot_id=str(info["robot_id"]), proto=int(info["proto"]), board=dict(info.get("board", {})),
             sensors=tuple(info["sensors"]), actions=tuple(info["actions"]),
@@ -126,9 +152,31 @@ class Session:
         except BaseException:
             self.stop_robot()
             raise
-        telemetry = decode_batches(inbox.telemetry, self.hub.sensors)
+        expected = inbox.result.get("samples")
+        expected = expected if isinstance(expected, int) and not isinstance(expected, bool) else None
+        telemetry = decode_batches(inbox.telemetry, self.hub.sensors, expected)
+        if telemetry.dropped and self.resend_telemetry and expected:
+            telemetry = self._recover_telemetry(telemetry, expected)
         return RunRecord(action, params, inbox.result, list(inbox.events), list(inbox.faults), telemetry,
                          self.frames_lost - lost_before)
+
+    def _recover_telemetry(self, telemetry: Telemetry, expected: int) -> Telemetry:
+        """Ask the hub for the batches holding missing samples until none are missing, or it has
+        none left to give; returns the telemetry as complete as it could be made."""
+        assert self.hub is not None
+        inbox = self._inbox
+        for _ in range(self.retries + 1):
+            seen = np.zeros(expected, dtype=bool)
+            index = telemetry.index[telemetry.index < expected]
+            seen[index] = True
+            missing = np.flatnonzero(~seen)
+            kind, reply = self._command(wire.RESEND, {"from": int(missing[0]), "to": int(missing[-1]) + 1})
+            # The batches come before the hub's answer; give stragglers one reply time to land.
+            self._wait(self.reply_timeout_s / 4, ping=False)
+            telemetry = decode_batches(inbox.telemetry, self.hub.sensors, expected)
+            if not telemetry.dropped or kind == wire.REFUSE or not reply.get("batches"):
+                break
+        return telemetry
 
     def stop_robot(self) -> None:
         """Tell the hub to stop now; best effort, never raises (used on the way out of errors)."""

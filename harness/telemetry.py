@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import struct
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -108,7 +108,7 @@ class Telemetry:
     reflectance_pct: np.ndarray  # uint8, shape (n, n_sensors)
     sensor_names: tuple[str, ...]
     battery_mv: np.ndarray  # int32, from each sample's batch header
-    dropped: int = 0  # samples missing from the index sequence (the tail cannot be known)
+    dropped: int = 0  # samples missing: gaps in the index sequence, and a lost tail when known
     channels: tuple[str, ...] = field(init=False)
 
     def __post_init__(self) -> None:
@@ -201,17 +201,19 @@ def _keep_order(index: np.ndarray) -> np.ndarray | None:
     return order[first]
 
 
-def decode_batches(bodies: Sequence[bytes], sensor_names: Sequence[str]) -> Telemetry:
+def decode_batches(bodies: Sequence[bytes], sensor_names: Sequence[str],
+                   expected_samples: int | None = None) -> Telemetry:
     """Decode telemetry batch bodies (as sent by TelemetryBatch.body) into one Telemetry.
 
     All bodies must come from one action with the given sensor list. Batches may arrive out of
     order or more than once (a retransmission): samples come back in index order, each once, and
-    `dropped` counts the indices never seen. FrameError if any body's length does not match its
+    `dropped` counts the indices never seen; with expected_samples (the count the hub reported in
+    its result) that includes a lost tail. FrameError if any body's length does not match its
     header or its sensor count differs from len(sensor_names).
     """
     names = _check_sensor_names(sensor_names)
     if len(bodies) == 0:
-        return empty_telemetry(names)
+        return replace(empty_telemetry(names), dropped=expected_samples or 0)
     n_sensors = len(names)
     lengths = np.array([len(body) for body in bodies], dtype=np.int64)
     short = np.flatnonzero(lengths < wire.TELEMETRY_HEADER_BYTES)
@@ -244,7 +246,8 @@ def decode_batches(bodies: Sequence[bytes], sensor_names: Sequence[str]) -> Tele
 
     samples = rows.reshape(-1).view(sample_dtype(n_sensors))
     t_us = t0_us + samples["dt"].astype(np.int64) * wire.TELEMETRY_DT_UNIT_US
-    dropped = int(index[-1] + 1 - index.size) if index.size else 0
+    seen_up_to = int(index[-1] + 1) if index.size else 0
+    dropped = max(seen_up_to, expected_samples or 0) - int(index.size)
     return Telemetry(
         index=_frozen(index),
         t_s=_frozen(t_us / _US_PER_S),

@@ -55,3 +55,12 @@ class Board:
     def link_write(self, data):
         """Send bytes to the host."""
         raise NotImplementedError
+
+    def link_room(self):
+        """Bytes link_write can take now without blocking. The listener drops a telemetry batch
+        that does not fit (the host counts the gap) rather than stall the control loop."""
+        return 1 << 20
+
+    def button_pressed(self):
+        """True while the hub's own stop button is pressed (boards without one: always False)."""
+        return False

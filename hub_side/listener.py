@@ -10,7 +10,7 @@ It yields once per control period, may run built-in actions with `yield from ctx
 params)`, and returns a dict of what it measured.
 """
 
-from hub_side import wire
+from hub_side import auth, wire
 from hub_side.actions import BUILTINS
 from hub_side.board import ticks_diff
 from hub_side.motion import DEFAULT_GEOMETRY, ParamError, check_params, deg_per_mm
@@ -23,6 +23,7 @@ _BATCH_MAX_SPAN_US = 200000  # flush telemetry at least this often so the host s
 _REPLY_CACHE = 16
 _STALL_US = 400000
 _STALL_MIN_PCT = 15
+DEFAULT_KEEP_TELEMETRY_BYTES = 16384  # the current action's batches kept for a RESEND
 
 
 class ActionContext:
@@ -93,8 +94,10 @@ class ActionContext:
 
 
 class Listener:
-    def __init__(self, board, robot_id="robot", control_period_us=10000, geometry=None):
+    def __init__(self, board, robot_id="robot", control_period_us=10000, geometry=None, secret=None,
+                 keep_telemetry_bytes=DEFAULT_KEEP_TELEMETRY_BYTES):
         self.board = board
+        self.secret = secret  # set: only a host that proves it knows this may say hello
         self.robot_id = robot_id
         self.period_us = control_period_us
         self.geometry = dict(DEFAULT_GEOMETRY)
@@ -117,6 +120,11 @@ class Listener:
         self._enc = None
         self._heading = None
         self._refl_now = {}
+        self._challenge = None
+        self._keep_bytes = keep_telemetry_bytes
+        self._kept = []  # (first_index, body) of this action's batches, oldest first
+        self._kept_size = 0
+        self._samples_unsent = 0
         board.link_write(b"\x00")  # ends any partial frame the host may hold
 
     # ------------------------------------------------------------ registration
@@ -186,6 +194,10 @@ class Listener:
         if ticks_diff(now, self._last_rx_us) > self._watchdog_us:
             self._finish("watchdog", None, ("watchdog", "host silent for more than %d ms" % (self._watchdog_us // 1000)))
             return IDLE_POLL_US
+        if board.button_pressed():
+            self.send_event("button", None)
+            self._finish("stopped", None)
+            return IDLE_POLL_US
         if self.t_us >= self._next_control_us:
             self._step()
             self._next_control_us += self.period_us
@@ -250,8 +262,40 @@ class Listener:
     def _flush_telemetry(self):
         batch = self._batch
         if batch.count:
-            self._send_frame(wire.TELEMETRY, batch.body(self.board.battery_mv()))
+            body = bytes(batch.body(self.board.battery_mv()))
+            self._keep(batch.first_index, body)
+            # A link too slow for this rate: drop the batch (the host sees the gap) rather than
+            # block the control loop on a full transmit buffer.
+            if self.board.link_room() >= len(body) + len(body) // 254 + 7:
+                self._send_frame(wire.TELEMETRY, body)
+            else:
+                self._samples_unsent += batch.count
         batch.reset(self._sample_index)
+
+    def _keep(self, first_index, body):
+        kept = self._kept
+        kept.append((first_index, body))
+        self._kept_size += len(body)
+        while self._kept_size > self._keep_bytes and kept:
+            self._kept_size -= len(kept.pop(0)[1])
+
+    def _resend(self, seq, msg):
+        """Send the kept batches that hold samples from..to-1 again; say if some are gone."""
+        first, end = msg.get("from"), msg.get("to")
+        if not isinstance(first, int) or not isinstance(end, int) or isinstance(first, bool) or isinstance(end, bool):
+            self._send_json(wire.REFUSE, {"ref": seq, "code": "bad_param", "text": "resend needs whole numbers from and to"})
+            return
+        sent = 0
+        covered = first
+        n_sensors = len(self.sensor_names)
+        for index, body in self._kept:
+            count = (len(body) - wire.TELEMETRY_HEADER_BYTES) // wire.telemetry_sample_bytes(n_sensors)
+            if index < end and index + count > first:
+                self._send_frame(wire.TELEMETRY, body)
+                sent += 1
+                if index <= covered:
+                    covered = max(covered, index + count)
+        self._send_json(wire.ACK, {"ref": seq, "batches": sent, "complete": covered >= end})
 
     # ------------------------------------------------------------ actions
 
@@ -283,6 +327,9 @@ class Listener:
         self._next_control_us = self.period_us
         self._sample_index = 0
         self._batch.reset(0)
+        self._kept = []
+        self._kept_size = 0
+        self._samples_unsent = 0
         self._refl = [0] * len(self.sensor_names)
         self._timeout_us = int(params.get("timeout_s", 3600) * 1e6) if spec is not None else 3600 * 1000000
         self._stall_enc = None
@@ -326,6 +373,8 @@ class Listener:
             out["status"] = status
         out["action"] = self._action
         out["samples"] = self._sample_index
+        if self._samples_unsent:
+            out["samples_unsent"] = self._samples_unsent
         self._send_json(wire.RESULT, out)
         self.contexts = []
 
@@ -334,6 +383,13 @@ class Listener:
     def _handle(self, msg_type, seq, body):
         if msg_type == wire.PING:
             self._send_json(wire.PONG, {"ref": seq})
+            return
+        if msg_type == wire.RESEND:
+            if self._session is not None:
+                try:
+                    self._resend(seq, wire.decode_json(body))
+                except wire.FrameError:
+                    pass
             return
         if msg_type not in (wire.HELLO, wire.START, wire.STOP):
             return  # hub-to-host types or unknown: ignore, never act on them
@@ -380,9 +436,24 @@ class Listener:
         if problem is not None:
             self._send_json(wire.REFUSE, {"ref": seq, "code": "bad_param", "text": problem})
             return
+        session = msg.get("session", "")
+        hub_proof = None
+        if self.secret:
+            challenge, self._challenge = self._challenge, None  # each challenge is good for one try
+            offered = msg.get("auth")
+            if offered is None or challenge is None or msg.get("challenge") != challenge:
+                self._challenge = auth.new_challenge()
+                self._send_json(wire.REFUSE, {"ref": seq, "code": "auth", "challenge": self._challenge,
+                                              "text": "this hub needs proof of the shared secret"})
+                return
+            if not auth.same(offered, auth.proof(self.secret, "host", challenge, str(session))):
+                self._send_json(wire.REFUSE, {"ref": seq, "code": "auth_failed",
+                                              "text": "wrong proof: the host's secret is not this hub's"})
+                return
+            hub_proof = auth.proof(self.secret, "hub", challenge, str(session))
         if self._gen is not None:
             self._finish("stopped", None)  # a new host took over: never leave a move running
-        self._session = msg.get("session", "")
+        self._session = session
         self._replies = {}
         self._reply_order = []
         self._watchdog_us = int(watchdog_ms * 1000)
@@ -399,6 +470,8 @@ class Listener:
             "max_telemetry_hz": MAX_TELEMETRY_HZ,
             "geometry": self.geometry,
         }
+        if hub_proof is not None:
+            info["proof"] = hub_proof
         self._reply(seq, wire.HELLO, body, wire.HUB_INFO, info)
 
     def _start_command(self, seq, body, msg):

@@ -22,14 +22,20 @@ except ImportError:  # CPython
         return value
 
 
-PROTOCOL_VERSION = const(1)
+PROTOCOL_VERSION = const(2)
+
+# Our Bluetooth LE byte-pipe service (UUIDs generated for this project, see docs/links.md). The
+# host writes frames without response to BLE_RX_UUID; the hub notifies on BLE_TX_UUID.
+BLE_SERVICE_UUID = "6f288cd7-2ba2-4c96-b014-034ad2e3a6fd"
+BLE_RX_UUID = "38d99472-ecac-4bb9-8733-fbb0b6e91a05"  # host -> hub
+BLE_TX_UUID = "41075109-ab63-4abf-a196-65dabb1e9a4a"  # hub -> host
 
 # Cap on one raw frame (type + seq + body + crc); an encoded frame can be at most this plus COBS
 # overhead. Anything longer is refused by the reader without being decoded.
 MAX_RAW_BYTES = const(1024)
 MAX_ENCODED_BYTES = const(1030)  # MAX_RAW_BYTES + ceil(MAX_RAW_BYTES / 254) + 1
 
-# Message types. Host -> hub: HELLO, START, STOP, PING. Hub -> host: the rest.
+# Message types. Host -> hub: HELLO, START, STOP, PING, RESEND. Hub -> host: the rest.
 HELLO = const(0x01)
 HUB_INFO = const(0x02)
 START = const(0x03)
@@ -42,6 +48,7 @@ PING = const(0x09)
 PONG = const(0x0A)
 FAULT = const(0x0B)
 TELEMETRY = const(0x0C)
+RESEND = const(0x0D)  # host -> hub: send the kept telemetry batches covering samples again
 
 MESSAGE_NAMES = {
     HELLO: "hello",
@@ -56,6 +63,7 @@ MESSAGE_NAMES = {
     PONG: "pong",
     FAULT: "fault",
     TELEMETRY: "telemetry",
+    RESEND: "resend",
 }
 
 # Telemetry batch: a header, then n fixed-size samples. first_index counts samples since the

@@ -137,10 +137,12 @@ def test_bad_profile_names_file_and_key(tmp_path, capsys, good, bad, message):
     assert f"{profile}: {message}" in err
 
 
-def test_real_links_say_they_are_not_available_yet(tmp_path, capsys):
-    suite = write_suite(tmp_path, "[[cases]]\nname = 'x'\naction = 'stop'\n")
-    assert main(["run", str(suite), "--link", "serial:/dev/ttyACM0", "--db", str(tmp_path / "r.sqlite")]) == 3
-    assert "serial links are not available in this version yet" in capsys.readouterr().err
+def test_a_missing_serial_port_is_a_clear_link_error(tmp_path, capsys):
+    suite = write_suite(tmp_path, "[[cases]]\nname = 'x'\naction = 'stop'\nreset = 'operator'\n")
+    assert main(["run", str(suite), "--link", "serial:/dev/no-such-hub", "--db", str(tmp_path / "r.sqlite")]) == 3
+    err = capsys.readouterr().err
+    assert "cannot open serial port /dev/no-such-hub" in err and "trackproof links" in err
+    assert "Traceback" not in err
 
 
 def test_ctrl_c_keeps_finished_runs_and_the_session_resumes(tmp_path, capsys, monkeypatch):

@@ -161,6 +161,7 @@ class SimBoard(Board):
         self.sensor_names = sensor_names
         self.rx = bytearray()  # host -> hub
         self.tx = bytearray()  # hub -> host
+        self.tx_capacity: int | None = None  # unbounded in virtual time; set by a real-time link
 
     def ticks_us(self) -> int:
         return self.robot.t_us
@@ -192,3 +193,6 @@ class SimBoard(Board):
 
     def link_write(self, data: bytes) -> None:
         self.tx.extend(data)
+
+    def link_room(self) -> int:
+        return Board.link_room(self) if self.tx_capacity is None else self.tx_capacity - len(self.tx)
