@@ -146,7 +146,8 @@ class Session:
             while inbox.result is None:
                 if self.link.now() > deadline:
                     raise LinkError(f"no result for {action} within {timeout_s:.1f} s")
-                self._wait(min(self._ping_interval_s(), max(0.0, deadline - self.link.now())))
+                now = self.link.now()
+                self._wait(max(0.0, min(self._last_sent + self._ping_interval_s(), deadline) - now))
         except HubRefused:
             raise
         except BaseException:
