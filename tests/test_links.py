@@ -407,3 +407,54 @@ def test_real_hardware_waits_for_the_operators_yes(tmp_path):
         asked.clear()
         runner("", store, confirm=False).run()
         assert not any("Type yes" in a for a in asked)
+
+
+# ------------------------------------------------------------------ the commands
+
+
+def test_sim_serve_gives_a_serial_link_any_suite_can_use(tmp_path, capsys):
+    import signal
+    import subprocess
+    import sys
+
+    from harness.cli import main
+
+    server = subprocess.Popen([sys.executable, "-m", "harness", "sim", "serve", "--seed", "3"],
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        link = ""
+        while not link:
+            line = server.stdout.readline()
+            assert line, server.stderr.read()
+            if line.strip().startswith("serial:"):
+                link = line.strip()
+        suite = _suite(tmp_path, '[[cases]]\nname = "t"\naction = "turn"\nreset = "sim"\n'
+                                 'params = { angle_deg = 90, using = "gyro" }\nrepeat = 2\n')
+        assert main(["run", str(suite), "--link", link, "--db", str(tmp_path / "r.sqlite")]) == 0
+        assert "1 of 1 cases passed" in capsys.readouterr().out
+    finally:
+        server.send_signal(signal.SIGINT)
+        out, err = server.communicate(timeout=10)
+    assert server.returncode == 0 and "stopped" in err and "Traceback" not in err
+
+
+def test_links_lists_usb_ports_likely_hubs_first(monkeypatch, capsys):
+    from serial.tools import list_ports_common
+
+    from harness.cli import main
+
+    def port(device, vid, pid, serial_number, description):
+        info = list_ports_common.ListPortInfo(device, skip_link_detection=True)
+        info.vid, info.pid, info.serial_number, info.description = vid, pid, serial_number, description
+        return info
+
+    ports = [port("/dev/ttyUSB0", 0x1234, 0x5678, None, "some other gadget"),
+             port("/dev/ttyACM0", 0x2E8A, 0x0005, "E66138935F", "Board CDC"),
+             port("/dev/ttyS0", None, None, None, "n/a")]
+    monkeypatch.setattr("serial.tools.list_ports.comports", lambda: ports)
+    assert main(["links"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0].startswith("/dev/ttyACM0") and "2E8A:0005" in lines[0] and "likely hub" in lines[0]
+    assert lines[1].startswith("/dev/ttyUSB0") and "likely hub" not in lines[1]
+    assert not any("ttyS0" in line for line in lines)  # not USB
+    assert lines[-1] == "would pick: --link serial:/dev/ttyACM0"
