@@ -14,6 +14,8 @@ Prints:
     serial_dropped_samples: samples the host never got in that run
     serial_link_limit_samples_per_s: what 1 000 000 baud can carry at the measured bytes per sample
     and the same three with a _115200 suffix.
+    watchdog_stop_delay_ms: from the hub's last byte from the host to its motors stopping, when the
+        host closes the port in the middle of a move (the watchdog is 500 ms)
 """
 
 from __future__ import annotations
@@ -88,6 +90,22 @@ def throughput(baud: int, seconds: float) -> tuple[float, int, float]:
     return samples / duration, record.telemetry.dropped, limit
 
 
+def watchdog_stop_delay() -> float:
+    sim = Simulation.from_files(seed=1)
+    with serve_pty(sim) as (device, _hub):
+        link, session = connect(device, sim)
+        params = sim.profile.action_defaults("follow_line", {"distance_mm": 3000})
+        session._command(wire.START, {"action": "follow_line", "params": params, "telemetry_hz": 100})
+        link.close()  # the host is gone mid-move
+        deadline = time.perf_counter() + 5
+        while sim.robot.power != (0.0, 0.0):
+            if time.perf_counter() > deadline:
+                raise SystemExit("the motors still run 5 s after the host went silent")
+            time.sleep(0.0002)
+        stopped_us = sim.t_us
+    return (stopped_us - sim.listener._last_rx_us) / 1000
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--pings", type=int, default=300)
@@ -101,6 +119,7 @@ def main() -> None:
         print(f"serial_telemetry_samples_per_s{suffix}: {rate:.0f} samples/s (asked for {TELEMETRY_HZ})")
         print(f"serial_dropped_samples{suffix}: {dropped} samples")
         print(f"serial_link_limit_samples_per_s{suffix}: {limit:.0f} samples/s")
+    print(f"watchdog_stop_delay_ms: {watchdog_stop_delay():.1f} ms (watchdog 500 ms, control period 10 ms)")
 
 
 if __name__ == "__main__":
