@@ -8,50 +8,13 @@
 // Exit codes: 0 ok, 1 Python exception, 2 bad usage or missing npm package.
 
 import fs from "node:fs";
-import path from "node:path";
+
+import { copyPackage, fail, parseArgs } from "./common.mjs";
 
 const USAGE = "usage: node run.mjs [--pkg HOSTDIR]... SCRIPT.py";
 const HEAP_BYTES = 64 * 1024 * 1024; // generous so tests are never memory-bound
 
-function fail(message, code) {
-  process.stderr.write(message + "\n");
-  process.exit(code);
-}
-
-function parseArgs(argv) {
-  const packages = [];
-  let script = null;
-  for (let i = 0; i < argv.length; i++) {
-    if (argv[i] === "--pkg" && i + 1 < argv.length) {
-      packages.push(argv[++i]);
-    } else if (script === null && !argv[i].startsWith("--")) {
-      script = argv[i];
-    } else {
-      fail(`unexpected argument: ${argv[i]}\n${USAGE}`, 2);
-    }
-  }
-  if (script === null) fail(USAGE, 2);
-  return { packages, script };
-}
-
-// Copies every *.py under hostDir into /lib/<basename>/, keeping sub-folders.
-function copyPackage(FS, hostDir) {
-  const root = path.resolve(hostDir);
-  if (!fs.statSync(root, { throwIfNoEntry: false })?.isDirectory()) {
-    fail(`--pkg ${hostDir}: not a directory`, 2);
-  }
-  const target = "/lib/" + path.basename(root);
-  FS.mkdirTree(target);
-  for (const rel of fs.readdirSync(root, { recursive: true })) {
-    const hostFile = path.join(root, rel);
-    if (!rel.endsWith(".py") || !fs.statSync(hostFile).isFile()) continue;
-    const mpFile = target + "/" + rel.split(path.sep).join("/");
-    FS.mkdirTree(path.posix.dirname(mpFile));
-    FS.writeFile(mpFile, fs.readFileSync(hostFile));
-  }
-}
-
-const { packages, script } = parseArgs(process.argv.slice(2));
+const { packages, script } = parseArgs(process.argv.slice(2), USAGE);
 let source;
 try {
   source = fs.readFileSync(script, "utf8");
