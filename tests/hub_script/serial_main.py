@@ -32,5 +32,4 @@ async def main():
         board.idle_us(time.ticks_diff(now, last) * 1000)
         last = now
 
-
-await main()
+# The bridge (tests/micropython/serial_bridge.mjs) awaits main(); on a board: asyncio.run(main()).

@@ -5,8 +5,8 @@
 //
 // Bytes from stdin are queued for MicroPython's sys.stdin (an empty queue reads as no data, the
 // WebAssembly interpreter's behaviour); what the program writes to sys.stdout goes to stdout
-// unchanged. SCRIPT.py runs with top-level await, so its loop must await (asyncio.sleep_ms) to let
-// input in. The process ends when stdin closes or the script returns.
+// unchanged. SCRIPT.py defines `async def main()`, which is awaited; its loop must await
+// (asyncio.sleep_ms) to let input in. The process ends when stdin closes or main() returns.
 
 import fs from "node:fs";
 
@@ -57,7 +57,8 @@ process.stdin.on("end", () => {
 });
 
 try {
-  await mp.runPythonAsync(fs.readFileSync(script, "utf8"));
+  mp.runPython(fs.readFileSync(script, "utf8"));
+  await mp.runPythonAsync("await main()");
 } catch (err) {
   process.stderr.write((err.name === "PythonError" ? err.message : String(err.stack ?? err)) + "\n");
   flush();
