@@ -135,9 +135,10 @@ def open_real_link(spec: LinkSpec, suite: Suite) -> Link:
     """A serial or Bluetooth LE link to the hub, with the profile's settings."""
     profile = suite.profile
     if spec.kind == "serial":
-        from harness.links.serial_port import SerialLink
+        from harness.links.serial_port import SerialLink, auto_port
 
-        return SerialLink(spec.target, spec.baud or profile.baud)
+        port = auto_port() if spec.target == "auto" else spec.target
+        return SerialLink(port, spec.baud or profile.baud)
     from harness.links.ble import BleLink
 
     return BleLink(spec.target, scan_timeout_s=profile.scan_timeout_s)

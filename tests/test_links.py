@@ -458,3 +458,9 @@ def test_links_lists_usb_ports_likely_hubs_first(monkeypatch, capsys):
     assert lines[1].startswith("/dev/ttyUSB0") and "likely hub" not in lines[1]
     assert not any("ttyS0" in line for line in lines)  # not USB
     assert lines[-1] == "would pick: --link serial:/dev/ttyACM0"
+    from harness.links.serial_port import auto_port
+
+    assert auto_port() == "/dev/ttyACM0"
+    ports.append(port("/dev/ttyACM1", 0x2E8A, 0x0005, "E6613", "Board CDC"))
+    with pytest.raises(LinkError, match="exactly one likely hub; found /dev/ttyACM0 .2E8A:0005., /dev/ttyACM1"):
+        auto_port()

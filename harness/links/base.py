@@ -1,7 +1,8 @@
 """The link interface: the byte path between the host and one hub, chosen by a link string.
 
     sim | sim:COURSE             the simulated robot in this process, in virtual time
-    serial:PORT | serial:PORT@BAUD   USB serial (or any pyserial URL, e.g. socket://host:port)
+    serial:PORT | serial:PORT@BAUD   USB serial (or any pyserial URL, e.g. socket://host:port);
+                                 PORT auto: the one likely hub `trackproof links` shows
     ble:NAME_OR_ADDRESS          Bluetooth LE, our byte-pipe service
 
 Every link offers the same small synchronous interface and its own clock: the simulated link's

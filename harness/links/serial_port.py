@@ -53,6 +53,17 @@ def pick_port(ports: list[PortInfo]) -> PortInfo | None:
     return likely[0] if len(likely) == 1 else None
 
 
+def auto_port() -> str:
+    """The port for `--link serial:auto`; LinkError saying why when there is no single choice."""
+    ports = serial_ports()
+    chosen = pick_port(ports)
+    if chosen is None:
+        found = ", ".join(f"{p.device} ({p.usb_id})" for p in ports) or "no USB serial ports"
+        raise LinkError(f"serial:auto needs exactly one likely hub; found {found}. "
+                        "Name the port: --link serial:PORT")
+    return chosen.device
+
+
 class SerialLink(Link):
     """A serial port opened raw and exclusive; reads return as soon as any byte arrives."""
 
