@@ -262,7 +262,7 @@ class Listener:
     def _flush_telemetry(self):
         batch = self._batch
         if batch.count:
-            body = bytes(batch.body(self.board.battery_mv()))
+            body = batch.body(self.board.battery_mv())
             self._keep(batch.first_index, body)
             # A link too slow for this rate: drop the batch (the host sees the gap) rather than
             # block the control loop on a full transmit buffer.
