@@ -252,7 +252,7 @@ def cmd_links(args: argparse.Namespace) -> int:
 def cmd_hub_install(args: argparse.Namespace) -> int:
     from harness.hub_install import install_hub
 
-    install_hub(args.port, main_example=args.main_example)
+    install_hub(args.port, main_example=args.main_example, replace_main=args.replace_main)
     return 0
 
 
@@ -324,7 +324,8 @@ def build_parser() -> argparse.ArgumentParser:
     install = hub_sub.add_parser("install", help="copy hub_side to a MicroPython board over USB")
     install.add_argument("port", metavar="PORT", help="the board's serial port, e.g. /dev/ttyACM0 or COM3")
     install.add_argument("--main-example", action="store_true",
-                         help="also write the example main.py (replaces the board's main.py)")
+                         help="also write the example as /main.py (an existing one only with --replace-main)")
+    install.add_argument("--replace-main", action="store_true", help="let --main-example replace /main.py")
     install.set_defaults(func=cmd_hub_install)
     return parser
 
