@@ -295,7 +295,7 @@ def build_parser() -> argparse.ArgumentParser:
                                      "Exit codes: 0 all cases pass, 1 a case failed, 2 bad input, "
                                      "3 link failure.")
     run.add_argument("suite", type=Path, metavar="SUITE")
-    run.add_argument("--link", default="sim", help="sim, sim:COURSE, serial:PORT[@BAUD] or ble:NAME_OR_ADDRESS")
+    run.add_argument("--link", default="sim", help="sim, sim:COURSE, serial:PORT[@BAUD], serial:auto, ble:NAME_OR_ADDRESS or ble:auto")
     run.add_argument("--link-faults", metavar="SPEC",
                      help="damage the link on purpose, e.g. corrupt=0.05,drop=0.02 (see docs/links.md)")
     run.add_argument("--yes", action="store_true",

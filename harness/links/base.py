@@ -3,7 +3,8 @@
     sim | sim:COURSE             the simulated robot in this process, in virtual time
     serial:PORT | serial:PORT@BAUD   USB serial (or any pyserial URL, e.g. socket://host:port);
                                  PORT auto: the one likely hub `trackproof links` shows
-    ble:NAME_OR_ADDRESS          Bluetooth LE, our byte-pipe service
+    ble:NAME_OR_ADDRESS          Bluetooth LE, our byte-pipe service; ble:auto takes the one
+                                 hub advertising it
 
 Every link offers the same small synchronous interface and its own clock: the simulated link's
 clock is virtual, so waiting on it advances the simulation instead of sleeping. A link that is
