@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.tomlfile import Table, load_toml
+from hub_side.motion import GEOMETRY_LIMITS
 
 
 @dataclass(frozen=True)
@@ -94,9 +95,12 @@ def profile_from_table(t: Table) -> RobotProfile:
     robot_id = t.str("id")
     if not robot_id.strip():
         raise t.error("id", "must not be empty")
-    wheel = t.num("wheel_diameter_mm", positive=True, high=1000)
-    track = t.num("track_mm", positive=True, high=2000)
-    scales = {k: t.num(k, 1.0, low=0.5, high=2.0) for k in ("distance_scale", "spin_scale", "pivot_scale")}
+    # The hub refuses geometry outside these same limits.
+    wheel = t.num("wheel_diameter_mm", low=GEOMETRY_LIMITS["wheel_diameter_mm"][0],
+                  high=GEOMETRY_LIMITS["wheel_diameter_mm"][1])
+    track = t.num("track_mm", low=GEOMETRY_LIMITS["track_mm"][0], high=GEOMETRY_LIMITS["track_mm"][1])
+    scales = {k: t.num(k, 1.0, low=GEOMETRY_LIMITS[k][0], high=GEOMETRY_LIMITS[k][1])
+              for k in ("distance_scale", "spin_scale", "pivot_scale")}
     sensors_t = t.table("sensors")
     sensors: dict[str, SensorPlace] = {}
     for name in sensors_t.data:

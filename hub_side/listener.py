@@ -13,7 +13,8 @@ params)`, and returns a dict of what it measured.
 from hub_side import auth, wire
 from hub_side.actions import BUILTINS
 from hub_side.board import ticks_diff
-from hub_side.motion import DEFAULT_GEOMETRY, ParamError, check_params, deg_per_mm
+from hub_side.motion import (DEFAULT_GEOMETRY, GEOMETRY_LIMITS, ParamError, check_params, clip, deg_per_mm,
+                             is_finite_number, shown)
 
 MAX_TELEMETRY_HZ = 500
 DEFAULT_TELEMETRY_HZ = 100
@@ -225,7 +226,7 @@ class Listener:
             self._finish("done", result)
             return
         except Exception as exc:  # an action or routine failed: stop, report, keep serving
-            self._finish("error", None, ("action_error", "%s: %s" % (type(exc).__name__, exc)))
+            self._finish("error", None, ("action_error", clip("%s: %s" % (type(exc).__name__, exc))))
             return
         if self.t_us > self._timeout_us:
             self.send_event("timeout", {"after_s": self._timeout_us / 1e6})
@@ -301,13 +302,13 @@ class Listener:
 
     def _start(self, name, params, telemetry_hz):
         """Start an action or routine; returns None or (code, text) for a refusal."""
-        if name in BUILTINS:
+        if isinstance(name, str) and name in BUILTINS:
             fn, spec = BUILTINS[name]
-        elif name in self.routines:
+        elif isinstance(name, str) and name in self.routines:
             fn, spec = self.routines[name]
         else:
             known = sorted(list(BUILTINS) + list(self.routines))
-            return ("unknown_action", "no action or routine %r (known: %s)" % (name, ", ".join(known)))
+            return ("unknown_action", "no action or routine %s (known: %s)" % (shown(name), ", ".join(known)))
         if not isinstance(params, dict):
             return ("bad_param", "params must be an object")
         if spec is not None:
@@ -315,8 +316,8 @@ class Listener:
                 params = check_params(spec, params, self.sensor_names)
             except ParamError as exc:
                 return ("bad_param", str(exc))
-        if isinstance(telemetry_hz, bool) or not isinstance(telemetry_hz, (int, float)) or not 0 <= telemetry_hz <= MAX_TELEMETRY_HZ:
-            return ("bad_param", "telemetry_hz: must be between 0 and %d" % MAX_TELEMETRY_HZ)
+        if not is_finite_number(telemetry_hz) or not (telemetry_hz == 0 or 1 <= telemetry_hz <= MAX_TELEMETRY_HZ):
+            return ("bad_param", "telemetry_hz: must be 0 (off) or between 1 and %d" % MAX_TELEMETRY_HZ)
         self.t_us = 0
         self._last_tick_us = self.board.ticks_us()
         ctx = ActionContext(self, 0)
@@ -347,7 +348,7 @@ class Listener:
             self.power = (0, 0)
             self.contexts = []
             code = "bad_param" if isinstance(exc, ValueError) else "action_error"
-            return (code, str(exc))
+            return (code, clip(str(exc)))
         self._gen = gen
         self._pending_result = None
         return None
@@ -416,23 +417,26 @@ class Listener:
     def _hello(self, seq, body, msg):
         proto = msg.get("proto")
         if proto != wire.PROTOCOL_VERSION:
-            text = "hub %s speaks protocol %d, host speaks %s" % (self.robot_id, wire.PROTOCOL_VERSION, proto)
+            text = "hub %s speaks protocol %d, host speaks %s" % (self.robot_id, wire.PROTOCOL_VERSION, shown(proto))
             self._send_json(wire.REFUSE, {"ref": seq, "code": "protocol", "text": text, "hub_proto": wire.PROTOCOL_VERSION})
             return
         watchdog_ms = msg.get("watchdog_ms", DEFAULT_WATCHDOG_MS)
         geometry = msg.get("geometry", {})
         problem = None
-        if isinstance(watchdog_ms, bool) or not isinstance(watchdog_ms, (int, float)) or not 50 <= watchdog_ms <= 60000:
+        if not is_finite_number(watchdog_ms) or not 50 <= watchdog_ms <= 60000:
             problem = "watchdog_ms: must be between 50 and 60000"
         elif not isinstance(geometry, dict):
             problem = "geometry: must be an object"
         else:
             for key in geometry:
                 value = geometry[key]
-                if key not in DEFAULT_GEOMETRY:
-                    problem = "geometry.%s: unknown key" % key
-                elif isinstance(value, bool) or not isinstance(value, (int, float)) or value <= 0:
-                    problem = "geometry.%s: must be a positive number" % key
+                if key not in GEOMETRY_LIMITS:
+                    problem = "geometry.%s: unknown key" % clip(key)
+                    break
+                low, high = GEOMETRY_LIMITS[key]
+                if not is_finite_number(value) or not low <= value <= high:
+                    problem = "geometry.%s: must be a number between %s and %s" % (key, low, high)
+                    break
         if problem is not None:
             self._send_json(wire.REFUSE, {"ref": seq, "code": "bad_param", "text": problem})
             return

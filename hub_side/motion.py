@@ -16,6 +16,31 @@ DEFAULT_GEOMETRY = {
 }
 
 
+# What a hello may set; the host's profile checks the same ranges.
+GEOMETRY_LIMITS = {
+    "wheel_diameter_mm": (1.0, 1000.0),
+    "track_mm": (1.0, 2000.0),
+    "distance_scale": (0.5, 2.0),
+    "spin_scale": (0.5, 2.0),
+    "pivot_scale": (0.5, 2.0),
+}
+_SHOWN_CHARS = 40  # host text echoed in an error is cut here, so a refusal always fits its frame
+
+
+def clip(text):
+    """Host text cut short: errors echo what the host sent without letting it grow the reply."""
+    return text if len(text) <= _SHOWN_CHARS else text[: _SHOWN_CHARS - 3] + "..."
+
+
+def shown(value):
+    return clip(repr(value))
+
+
+def is_finite_number(value):
+    """A real number, not a bool, neither infinite nor NaN (x - x is 0 only for finite x)."""
+    return not isinstance(value, bool) and isinstance(value, (int, float)) and value - value == 0
+
+
 def deg_per_mm(geometry):
     """Motor degrees per millimetre of travel, with the distance correction factor."""
     return 360.0 / (math.pi * geometry["wheel_diameter_mm"]) * geometry["distance_scale"]
@@ -72,7 +97,7 @@ def check_params(spec, given, sensor_names):
     """Validated parameters with defaults filled in; ParamError names the first bad key."""
     for key in given:
         if key not in spec:
-            raise ParamError(key, "unknown parameter (known: %s)" % ", ".join(sorted(spec)))
+            raise ParamError(clip(key), "unknown parameter (known: %s)" % ", ".join(sorted(spec)))
     out = {}
     for key in spec:
         kind, default, low, high = spec[key]
@@ -85,22 +110,22 @@ def check_params(spec, given, sensor_names):
 
 def _check_value(key, kind, value, low, high, sensor_names):
     if kind == "num" or kind == "int":
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise ParamError(key, "expected a number, got %r" % (value,))
-        if kind == "int" and value != int(value):
-            raise ParamError(key, "expected a whole number, got %r" % (value,))
+        if not is_finite_number(value):
+            raise ParamError(key, "expected a number, got %s" % shown(value))
         if value < low or value > high:
-            raise ParamError(key, "must be between %s and %s, got %s" % (low, high, value))
+            raise ParamError(key, "must be between %s and %s, got %s" % (low, high, shown(value)))
+        if kind == "int" and value != int(value):
+            raise ParamError(key, "expected a whole number, got %s" % shown(value))
         return int(value) if kind == "int" else float(value)
     if kind == "str":
         if value not in high:
-            raise ParamError(key, "expected one of %s, got %r" % (", ".join(high), value))
+            raise ParamError(key, "expected one of %s, got %s" % (", ".join(high), shown(value)))
         return value
     if kind == "sensor":
         if value == "":
             return value
         if value not in sensor_names:
-            raise ParamError(key, "unknown sensor %r (hub has: %s)" % (value, ", ".join(sensor_names)))
+            raise ParamError(key, "unknown sensor %s (hub has: %s)" % (shown(value), ", ".join(sensor_names)))
         return value
     if kind == "sensors":
         if isinstance(value, str):
@@ -109,6 +134,6 @@ def _check_value(key, kind, value, low, high, sensor_names):
             raise ParamError(key, "expected one or two sensor names")
         for name in value:
             if name not in sensor_names:
-                raise ParamError(key, "unknown sensor %r (hub has: %s)" % (name, ", ".join(sensor_names)))
+                raise ParamError(key, "unknown sensor %s (hub has: %s)" % (shown(name), ", ".join(sensor_names)))
         return list(value)
     raise ParamError(key, "bad spec kind %r" % kind)

@@ -117,7 +117,7 @@ def test_bad_suite_is_one_clear_line(tmp_path, capsys, body, message):
 
 
 BAD_PROFILES = [
-    ("wheel_diameter_mm = 56.0", "wheel_diameter_mm = -56.0", "wheel_diameter_mm: must be greater than 0"),
+    ("wheel_diameter_mm = 56.0", "wheel_diameter_mm = -56.0", "wheel_diameter_mm: must be at least 1.0, got -56.0"),
     ('id = "kestrel-7"', 'id = ""', "id: must not be empty"),
     ('left = "outer_left"', 'left = "whisker"', "junctions.left: unknown sensor 'whisker'"),
     ("forward_mm = 70.0", 'forward_mm = "far"', "sensors.left.forward_mm: expected a number"),
