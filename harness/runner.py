@@ -14,7 +14,6 @@ on real hardware, the runner says what the robot is about to do and waits for a 
 
 from __future__ import annotations
 
-import random
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -25,11 +24,12 @@ import pandas as pd
 
 from harness.analysis import Check, evaluate, iso9283_rp, orientation_rp, summarize, verdict
 from harness.errors import HubRefused, InputError, LinkError, ProtocolError
-from harness.links import Faults, FaultyLink, Link, LinkSpec, SimLink, parse_link
+from harness.links import Faults, Link, LinkSpec
+from harness.profile import RobotProfile
+from harness.robot import RobotConnector, open_real_link
 from harness.measure import Measurement, measure_run, metrics_by_name
 from harness.session import RunRecord, Session
-from harness.sim import Simulation, truth_report, truth_snapshot
-from harness.sim.course import load_course
+from harness.sim import truth_report, truth_snapshot
 from harness.store import Store
 from harness.suites import Case, Suite
 
@@ -131,47 +131,25 @@ def _finite(x: float) -> float | None:
     return None if x != x else round(float(x), 6)
 
 
-def open_real_link(spec: LinkSpec, suite: Suite) -> Link:
-    """A serial or Bluetooth LE link to the hub, with the profile's settings."""
-    profile = suite.profile
-    if spec.kind == "serial":
-        from harness.links.serial_port import SerialLink, auto_port
-
-        port = auto_port() if spec.target == "auto" else spec.target
-        return SerialLink(port, spec.baud or profile.baud)
-    from harness.links.ble import BleLink
-
-    return BleLink(spec.target, scan_timeout_s=profile.scan_timeout_s)
-
-
 class Runner:
     def __init__(self, suite: Suite, store: Store, *, link: str = "sim", faults: Faults | None = None,
                  repeat: int | None = None, seed: int | None = None, ask: Callable[[str], str] = input,
                  confirm: bool = True,
                  on_progress: Callable[[str, int, int, int, int], None] | None = None,
-                 open_link: Callable[[LinkSpec, Suite], Link] = open_real_link) -> None:
+                 open_link: Callable[[LinkSpec, RobotProfile], Link] = open_real_link) -> None:
         self.suite = suite
         self.store = store
         self.link_name = link
         self.stored_link_name = f"{link} with faults {faults}" if faults else link
-        self.spec = parse_link(link)
-        self.faults = faults
         self.repeat = repeat
         self.seed = seed if seed is not None else (suite.seed if suite.seed is not None else 0)
         self.ask = ask
         self.confirm = confirm
         self.on_progress = on_progress
-        self._open_real_link = open_link
-        self._fault_rng = random.Random(faults.seed if faults else 0)
-        self._connections = 0
-        self.sim: Simulation | None = None
-        if self.spec.kind == "sim":
-            course_path = self.spec.target or suite.course_path
-            if course_path is None:
-                raise InputError("the simulated link needs a course: set course in the suite or use --link sim:COURSE",
-                                 file=str(suite.path), key="course")
-            self.sim = Simulation(load_course(course_path), suite.profile, seed=self.seed)
-        else:
+        self.robot = RobotConnector(suite.profile, link, course=suite.course_path, seed=self.seed,
+                                    faults=faults, source=str(suite.path), open_link=open_link)
+        self.sim = self.robot.sim
+        if self.sim is None:
             for case in suite.cases:
                 if case.judge_by == "truth":
                     raise InputError(f"case {case.name!r} is judged by truth, which only the simulated link "
@@ -180,38 +158,6 @@ class Runner:
         self.session: Session | None = None
 
     # ------------------------------------------------------------ connecting
-
-    def _connect(self) -> Session:
-        """A new link and a hello on it; LinkError or ProtocolError if that fails."""
-        profile = self.suite.profile
-        self._connections += 1
-        link = SimLink(self.sim) if self.sim is not None else self._open_real_link(self.spec, self.suite)
-        if self.faults is not None:
-            link = FaultyLink(link, self.faults, random.Random(self._fault_rng.getrandbits(32)))
-        session = Session(link, watchdog_ms=profile.watchdog_ms, secret=profile.secret or None,
-                          session_id=f"run-{self.seed}-{self._connections}")
-        try:
-            session.hello(geometry=profile.geometry(), expect_robot_id=profile.id)
-        except BaseException:
-            session.close()
-            raise
-        return session
-
-    def _reconnect(self, why: Exception) -> Session:
-        """Close the lost link and open a new one, a bounded number of times."""
-        if self.session is not None:
-            self.session.close()
-            self.session = None
-        tries = self.suite.profile.reconnects
-        last: Exception = why
-        for attempt in range(tries):
-            if self.sim is None:
-                time.sleep(min(4.0, 0.5 * 2**attempt))  # give a rebooting hub or a radio a moment
-            try:
-                return self._connect()
-            except LinkError as exc:
-                last = exc
-        raise LinkError(f"link lost and {tries} tries to reconnect failed; last: {last}")
 
     def _check_hub(self, session: Session) -> None:
         """What the suite needs from this hub: its resets, and a yes from the operator on real hardware."""
@@ -248,7 +194,7 @@ class Runner:
 
     def run(self, resume: str | None = None) -> SessionReport:
         suite = self.suite
-        self.session = self._connect()
+        self.session = self.robot.connect()
         try:
             self._check_hub(self.session)
         except BaseException:
@@ -282,7 +228,7 @@ class Runner:
                         except LinkError as lost:
                             outcome = RunOutcome(case.name, rep, "link_lost", [], str(lost))
                             report.runs.append(outcome)
-                            self.session = self._reconnect(lost)
+                            self.session = self.robot.reconnect(self.session, lost)
                             continue
                     report.runs.append(outcome)
                     if outcome.status in counts:

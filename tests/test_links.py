@@ -369,7 +369,7 @@ def test_runner_reconnects_after_a_lost_link_and_goes_on(tmp_path):
     assert report.status == "finished"
     assert "link_lost" in statuses and statuses.count("pass") >= 3
     assert _stored_statuses(db, report.uid) == statuses
-    assert runner._connections == 1 + statuses.count("link_lost"), statuses
+    assert runner.robot.connections == 1 + statuses.count("link_lost"), statuses
 
 
 def test_runner_over_serial_to_sim_serve_resets_through_the_hub(tmp_path):
