@@ -244,7 +244,7 @@ def cmd_links(args: argparse.Namespace) -> int:
             print(f"{hub.address:20} {hub.rssi if hub.rssi is not None else '-':>5} dBm  {hub.name or '-'}")
         if hubs:
             best = hubs[0]
-            print(f"would pick: --link ble:{best.name or best.address} (strongest signal)" if len(hubs) == 1 else
+            print(f"would pick: --link ble:{best.name or best.address}" if len(hubs) == 1 else
                   "would pick: none (more than one hub in range); name one with --link ble:NAME_OR_ADDRESS")
     return 0
 

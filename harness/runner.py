@@ -14,6 +14,7 @@ on real hardware, the runner says what the robot is about to do and waits for a 
 
 from __future__ import annotations
 
+import re
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -37,6 +38,11 @@ from harness.suites import Case, Suite
 SAFETY_NOTE = ("Safety: a real robot moves on its own. Keep fingers and loose cables clear, run it "
                "on the floor or a mat with edges, never leave lithium batteries charging or running "
                "unattended, and follow your venue's and the manufacturer's rules.")
+
+
+def redact_secret(profile_text: str) -> str:
+    """The profile as stored with each session: a shared secret does not belong in a database."""
+    return re.sub(r'(?m)^(\s*secret\s*=\s*)(".*?"|\'.*?\')', r'\1"(not stored)"', profile_text)
 
 
 class OperatorQuit(Exception):
@@ -208,7 +214,7 @@ class Runner:
         else:
             uid = self.store.begin_session(
                 suite_name=suite.name, suite_path=str(suite.path), suite_text=suite.text,
-                profile_text=suite.profile_text, robot_id=suite.profile.id, link=self.stored_link_name,
+                profile_text=redact_secret(suite.profile_text), robot_id=suite.profile.id, link=self.stored_link_name,
                 seed=self.seed, tool_version=version("trackproof"))
         reports = [CaseReport(case, self.repeats(case)) for case in suite.cases]
         total = sum(self.repeats(c) for c in suite.cases)
@@ -228,7 +234,8 @@ class Runner:
                         except LinkError as lost:
                             outcome = RunOutcome(case.name, rep, "link_lost", [], str(lost))
                             report.runs.append(outcome)
-                            self.session = self.robot.reconnect(self.session, lost)
+                            lost_session, self.session = self.session, None
+                            self.session = self.robot.reconnect(lost_session, lost)
                             continue
                     report.runs.append(outcome)
                     if outcome.status in counts:

@@ -60,6 +60,20 @@ class _Inbox:
     faults: list[dict[str, Any]] = field(default_factory=list)
     telemetry: list[bytes] = field(default_factory=list)
     result: dict[str, Any] | None = None
+    seen: set[int] = field(default_factory=set)  # hub seqs of this run's event/fault/result frames
+    hub_idle: bool = False  # a pong said no action runs: a result we lack was lost on the way
+
+
+def missing_ranges(index: np.ndarray, expected: int, most: int = 16) -> list[list[int]]:
+    """[from, to) ranges of the sample indices below `expected` not in index, at most `most` of
+    them (the rest merged into the last)."""
+    seen = np.zeros(expected, dtype=bool)
+    seen[index[(index >= 0) & (index < expected)]] = True
+    step = np.diff(np.concatenate(([0], (~seen).astype(np.int8), [0])))
+    ranges = [[int(a), int(b)] for a, b in zip(np.flatnonzero(step == 1), np.flatnonzero(step == -1))]
+    if len(ranges) > most:
+        ranges[most - 1:] = [[ranges[most - 1][0], ranges[-1][1]]]
+    return ranges
 
 
 class Session:
@@ -81,11 +95,13 @@ class Session:
         self._hub_seq: int | None = None
         self.frames_lost = 0
         self._inbox = _Inbox()
+        self._hello_args: tuple[dict[str, float] | None, str | None] | None = None
         link.write(b"\x00")  # ends any partial frame the hub may hold
 
     # ------------------------------------------------------------ commands
 
     def hello(self, geometry: dict[str, float] | None = None, expect_robot_id: str | None = None) -> HubInfo:
+        self._hello_args = (geometry, expect_robot_id)
         body: dict[str, Any] = {"proto": self.protocol_version, "session": self.session_id,
                                 "watchdog_ms": self.watchdog_ms}
         if geometry:
@@ -102,6 +118,9 @@ class Session:
                         auth=auth.proof(self.secret, "host", challenge, self.session_id))
         if kind == wire.REFUSE:
             code = reply.get("code")
+            if code == "auth" and self.secret:
+                raise ProtocolError(f"the hub kept asking for proof after {_AUTH_TRIES} answers: the link "
+                                    "may be losing frames; try again")
             if code == "protocol":
                 raise ProtocolError(f"protocol mismatch: host speaks {self.protocol_version}, "
                                     f"hub speaks {reply.get('hub_proto')} ({reply.get('text')})")
@@ -135,17 +154,27 @@ class Session:
         params = dict(params or {})
         inbox = self._inbox
         inbox.events, inbox.faults, inbox.telemetry, inbox.result = [], [], [], None
+        inbox.seen, inbox.hub_idle = set(), False
         lost_before = self.frames_lost
         if timeout_s is None:
             timeout_s = float(params.get("timeout_s", 30.0)) + 5.0
         try:
-            reply = self._command(wire.START, {"action": action, "params": params, "telemetry_hz": telemetry_hz})
+            start = {"action": action, "params": params, "telemetry_hz": telemetry_hz}
+            reply = self._command(wire.START, start)
+            if reply[0] == wire.REFUSE and reply[1].get("code") == "no_hello" and self._hello_args:
+                # The hub dropped our session (it holds a secret and we were quiet too long).
+                self.hello(*self._hello_args)
+                reply = self._command(wire.START, start)
             if reply[0] == wire.REFUSE:
                 raise HubRefused(str(reply[1].get("code")), str(reply[1].get("text")))
             deadline = self.link.now() + timeout_s
             while inbox.result is None:
                 if self.link.now() > deadline:
                     raise LinkError(f"no result for {action} within {timeout_s:.1f} s")
+                if inbox.hub_idle:
+                    inbox.hub_idle = False
+                    self._command(wire.RESEND, {"results": True, "ranges": []})  # the result was lost
+                    continue
                 now = self.link.now()
                 self._wait(max(0.0, min(self._last_sent + self._ping_interval_s(), deadline) - now))
         except HubRefused:
@@ -153,29 +182,35 @@ class Session:
         except BaseException:
             self.stop_robot()
             raise
-        expected = inbox.result.get("samples")
+        result = inbox.result
+        expected = result.get("samples")
         expected = expected if isinstance(expected, int) and not isinstance(expected, bool) else None
         telemetry = decode_batches(inbox.telemetry, self.hub.sensors, expected)
-        if telemetry.dropped and self.resend_telemetry and expected:
-            telemetry = self._recover_telemetry(telemetry, expected)
-        return RunRecord(action, params, inbox.result, list(inbox.events), list(inbox.faults), telemetry,
+        try:
+            if self.frames_lost > lost_before:
+                # An event or fault may have been among the lost frames: have them all again.
+                self._command(wire.RESEND, {"results": True, "ranges": []})
+            if telemetry.dropped and self.resend_telemetry and expected:
+                telemetry = self._recover_telemetry(telemetry, expected)
+        except LinkError:
+            pass  # keep what arrived: the run is stored, marked incomplete by its telemetry
+        return RunRecord(action, params, result, list(inbox.events), list(inbox.faults), telemetry,
                          self.frames_lost - lost_before)
 
     def _recover_telemetry(self, telemetry: Telemetry, expected: int) -> Telemetry:
         """Ask the hub for the batches holding missing samples until none are missing, or it has
-        none left to give; returns the telemetry as complete as it could be made."""
+        none of them left; returns the telemetry as complete as it could be made."""
         assert self.hub is not None
         inbox = self._inbox
         for _ in range(self.retries + 1):
-            seen = np.zeros(expected, dtype=bool)
-            index = telemetry.index[telemetry.index < expected]
-            seen[index] = True
-            missing = np.flatnonzero(~seen)
-            kind, reply = self._command(wire.RESEND, {"from": int(missing[0]), "to": int(missing[-1]) + 1})
-            # The batches come before the hub's answer; give stragglers one reply time to land.
+            kind, reply = self._command(wire.RESEND, {"ranges": missing_ranges(telemetry.index, expected)})
+            # The batches come before the hub's answer; give stragglers a moment to land.
             self._wait(self.reply_timeout_s / 4, ping=False)
+            before = telemetry.dropped
             telemetry = decode_batches(inbox.telemetry, self.hub.sensors, expected)
-            if not telemetry.dropped or kind == wire.REFUSE or not reply.get("batches"):
+            # Stop when whole, refused, or the hub no longer has what is missing and nothing came.
+            if not telemetry.dropped or kind == wire.REFUSE or (not reply.get("complete", True)
+                                                               and telemetry.dropped >= before):
                 break
         return telemetry
 
@@ -229,24 +264,30 @@ class Session:
         if data:
             for msg_type, seq, body in self._reader.feed(data):
                 self._track_seq(seq)
-                self._dispatch(msg_type, body)
+                self._dispatch(msg_type, seq, body)
         if ping and self.link.now() - self._last_sent >= self._ping_interval_s():
             self.link.write(wire.encode_message(wire.PING, self._next_seq(), {}))
             self._last_sent = self.link.now()
 
     def _track_seq(self, seq: int) -> None:
-        # The hub numbers every frame it sends; a gap means frames were lost on the way.
+        # The hub numbers every frame it sends; a gap means frames were lost on the way. A frame
+        # sent again keeps its old number: it is behind, and neither a gap nor the new latest.
         if self._hub_seq is not None:
             gap = (seq - self._hub_seq - 1) & 0xFFFF
-            if gap < 0x8000:
-                self.frames_lost += gap
+            if gap >= 0x8000:
+                return
+            self.frames_lost += gap
         self._hub_seq = seq
 
-    def _dispatch(self, msg_type: int, body: bytes) -> None:
+    def _dispatch(self, msg_type: int, seq: int, body: bytes) -> None:
         inbox = self._inbox
         if msg_type == wire.TELEMETRY:
             inbox.telemetry.append(bytes(body))
             return
+        if msg_type in (wire.EVENT, wire.FAULT, wire.RESULT):
+            if seq in inbox.seen:
+                return  # sent again on request, and we have it already
+            inbox.seen.add(seq)
         try:
             msg = wire.decode_json(body)
         except wire.FrameError:
@@ -262,3 +303,5 @@ class Session:
             inbox.faults.append(msg)
         elif msg_type == wire.RESULT:
             inbox.result = msg
+        elif msg_type == wire.PONG and msg.get("busy") is False and inbox.result is None:
+            inbox.hub_idle = True

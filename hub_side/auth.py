@@ -10,17 +10,19 @@ MicroPython has hashlib.sha256 but no hmac module; the host uses this same code.
 import hashlib
 
 try:
-    import os
-
-    def _random_bytes(n):
-        return os.urandom(n)
+    from os import urandom as _random_bytes
 
     _random_bytes(1)
-except (ImportError, AttributeError, NotImplementedError):  # a port without os.urandom
+    STRONG_RANDOM = True
+except (ImportError, AttributeError, NotImplementedError, OSError):  # a port without os.urandom
+    # The listener refuses a secret here: predictable challenges would let a recorded hello be
+    # replayed. The fallback only keeps hubs without a secret importable.
     import random
 
     def _random_bytes(n):
         return bytes(random.getrandbits(8) for _ in range(n))
+
+    STRONG_RANDOM = False
 
 
 _BLOCK = 64  # SHA-256 block size in bytes (RFC 2104 "B")

@@ -14,7 +14,7 @@ from hub_side import auth, wire
 from hub_side.actions import BUILTINS
 from hub_side.board import ticks_diff
 from hub_side.motion import (DEFAULT_GEOMETRY, GEOMETRY_LIMITS, ParamError, check_params, clip, deg_per_mm,
-                             is_finite_number, shown)
+                             is_finite_number, is_whole, shown)
 
 MAX_TELEMETRY_HZ = 500
 DEFAULT_TELEMETRY_HZ = 100
@@ -25,6 +25,7 @@ _REPLY_CACHE = 16
 _STALL_US = 400000
 _STALL_MIN_PCT = 15
 DEFAULT_KEEP_TELEMETRY_BYTES = 16384  # the current action's batches kept for a RESEND
+_RESEND_RANGES = 16
 
 
 class ActionContext:
@@ -98,6 +99,9 @@ class Listener:
     def __init__(self, board, robot_id="robot", control_period_us=10000, geometry=None, secret=None,
                  keep_telemetry_bytes=DEFAULT_KEEP_TELEMETRY_BYTES):
         self.board = board
+        if secret and not auth.STRONG_RANDOM:
+            raise ValueError("a shared secret needs os.urandom, which this port lacks: its challenges "
+                             "would be predictable")
         self.secret = secret  # set: only a host that proves it knows this may say hello
         self.robot_id = robot_id
         self.period_us = control_period_us
@@ -126,6 +130,7 @@ class Listener:
         self._kept = []  # (first_index, body) of this action's batches, oldest first
         self._kept_size = 0
         self._samples_unsent = 0
+        self._run_frames = []  # this action's event, fault and result frames, for a RESEND
         board.link_write(b"\x00")  # ends any partial frame the host may hold
 
     # ------------------------------------------------------------ registration
@@ -186,6 +191,11 @@ class Listener:
             for msg_type, seq, body in self._reader.feed(data):
                 self._last_rx_us = now
                 self._handle(msg_type, seq, body)
+        if self.secret and self._session is not None and self._gen is None \
+                and ticks_diff(now, self._last_rx_us) > self._watchdog_us:
+            # A host that proved the secret and then fell silent no longer holds the hub: the
+            # next host (another central, after a drop) must prove it again.
+            self._session = None
         if self._gen is None:
             return IDLE_POLL_US
         self.t_us += ticks_diff(now, self._last_tick_us)
@@ -280,23 +290,37 @@ class Listener:
         while self._kept_size > self._keep_bytes and kept:
             self._kept_size -= len(kept.pop(0)[1])
 
-    def _resend(self, seq, msg):
-        """Send the kept batches that hold samples from..to-1 again; say if some are gone."""
-        first, end = msg.get("from"), msg.get("to")
-        if not isinstance(first, int) or not isinstance(end, int) or isinstance(first, bool) or isinstance(end, bool):
-            self._send_json(wire.REFUSE, {"ref": seq, "code": "bad_param", "text": "resend needs whole numbers from and to"})
+    def _resend(self, seq, body, msg):
+        """Send again what the host lost of the current or last action: its event, fault and
+        result frames (as they were) when asked, and the kept telemetry batches holding samples
+        in any of the [from, to) ranges; the answer says whether every asked sample was kept."""
+        ranges = msg.get("ranges", [])
+        good = isinstance(ranges, list) and len(ranges) <= _RESEND_RANGES
+        for pair in ranges if good else ():
+            good = good and isinstance(pair, list) and len(pair) == 2 and is_whole(pair[0]) and is_whole(pair[1])
+        if not good:
+            self._reply(seq, wire.RESEND, body, wire.REFUSE, {"ref": seq, "code": "bad_param",
+                        "text": "ranges: expected at most %d [from, to) pairs of whole numbers" % _RESEND_RANGES})
             return
-        sent = 0
-        covered = first
+        if msg.get("results"):
+            for frame in self._run_frames:
+                self.board.link_write(frame)
         n_sensors = len(self.sensor_names)
-        for index, body in self._kept:
-            count = (len(body) - wire.TELEMETRY_HEADER_BYTES) // wire.telemetry_sample_bytes(n_sensors)
-            if index < end and index + count > first:
-                self._send_frame(wire.TELEMETRY, body)
-                sent += 1
-                if index <= covered:
-                    covered = max(covered, index + count)
-        self._send_json(wire.ACK, {"ref": seq, "batches": sent, "complete": covered >= end})
+        sent = 0
+        missing = 0
+        for first, end in ranges:
+            covered = first
+            for index, kept in self._kept:
+                count = (len(kept) - wire.TELEMETRY_HEADER_BYTES) // wire.telemetry_sample_bytes(n_sensors)
+                if index < end and index + count > first:
+                    self._send_frame(wire.TELEMETRY, kept)
+                    sent += 1
+                    if index <= covered:
+                        covered = max(covered, index + count)
+            if covered < end:
+                missing += 1
+        self._reply(seq, wire.RESEND, body, wire.ACK, {"ref": seq, "batches": sent, "complete": missing == 0,
+                                                        "busy": self._gen is not None})
 
     # ------------------------------------------------------------ actions
 
@@ -331,6 +355,7 @@ class Listener:
         self._kept = []
         self._kept_size = 0
         self._samples_unsent = 0
+        self._run_frames = []
         self._refl = [0] * len(self.sensor_names)
         self._timeout_us = int(params.get("timeout_s", 3600) * 1e6) if spec is not None else 3600 * 1000000
         self._stall_enc = None
@@ -364,7 +389,7 @@ class Listener:
             self._sample()
         self._flush_telemetry()
         if fault is not None:
-            self._send_json(wire.FAULT, {"code": fault[0], "text": fault[1]})
+            self._send_kept(wire.FAULT, {"code": fault[0], "text": fault[1]})
         out = self.contexts[0].measurements()
         if result is None:
             result = self._pending_result
@@ -376,23 +401,18 @@ class Listener:
         out["samples"] = self._sample_index
         if self._samples_unsent:
             out["samples_unsent"] = self._samples_unsent
-        self._send_json(wire.RESULT, out)
+        self._send_kept(wire.RESULT, out)
         self.contexts = []
 
     # ------------------------------------------------------------ messages
 
     def _handle(self, msg_type, seq, body):
         if msg_type == wire.PING:
-            self._send_json(wire.PONG, {"ref": seq})
+            # busy tells a host still waiting for a result that the action has ended (its result
+            # frame was lost, and RESEND can fetch it).
+            self._send_json(wire.PONG, {"ref": seq, "busy": self._gen is not None})
             return
-        if msg_type == wire.RESEND:
-            if self._session is not None:
-                try:
-                    self._resend(seq, wire.decode_json(body))
-                except wire.FrameError:
-                    pass
-            return
-        if msg_type not in (wire.HELLO, wire.START, wire.STOP):
+        if msg_type not in (wire.HELLO, wire.START, wire.STOP, wire.RESEND):
             return  # hub-to-host types or unknown: ignore, never act on them
         cached = self._replies.get(seq)
         if cached is not None and cached[0] == msg_type and cached[1] == body:
@@ -409,6 +429,8 @@ class Listener:
             self._reply(seq, msg_type, body, wire.REFUSE, {"ref": seq, "code": "no_hello", "text": "send a hello first"})
         elif msg_type == wire.START:
             self._start_command(seq, body, msg)
+        elif msg_type == wire.RESEND:
+            self._resend(seq, body, msg)
         else:
             if self._gen is not None:
                 self._finish("stopped", None)
@@ -447,8 +469,9 @@ class Listener:
             offered = msg.get("auth")
             if offered is None or challenge is None or msg.get("challenge") != challenge:
                 self._challenge = auth.new_challenge()
-                self._send_json(wire.REFUSE, {"ref": seq, "code": "auth", "challenge": self._challenge,
-                                              "text": "this hub needs proof of the shared secret"})
+                # Cached like any reply: a retransmitted hello gets this same challenge back.
+                self._reply(seq, wire.HELLO, body, wire.REFUSE, {"ref": seq, "code": "auth", "challenge": self._challenge,
+                            "text": "this hub needs proof of the shared secret"})
                 return
             if not auth.same(offered, auth.proof(self.secret, "host", challenge, str(session))):
                 self._send_json(wire.REFUSE, {"ref": seq, "code": "auth_failed",
@@ -502,7 +525,13 @@ class Listener:
         event = {"kind": kind, "t_s": self.t_us / 1e6}
         if fields:
             event.update(fields)
-        self._send_json(wire.EVENT, event)
+        self._send_kept(wire.EVENT, event)
+
+    def _send_kept(self, msg_type, obj):
+        """Send a frame the host must not miss, and keep it for a RESEND."""
+        frame = self._frame_json(msg_type, obj)
+        self._run_frames.append(frame)
+        self.board.link_write(frame)
 
     def _send_json(self, msg_type, obj):
         self.board.link_write(self._frame_json(msg_type, obj))

@@ -20,6 +20,9 @@ from hub_side.listener import Listener
 
 ROBOT_ID = "robot-1"  # the id in your robot profile; over Bluetooth also the advertised name
 LINK = "usb"  # "usb" (the USB serial console) or "ble" (Bluetooth LE)
+# The same text as [link] secret in the robot profile, or None. With a secret set, the hub only
+# obeys a host that proves it knows it (see docs/links.md); keep this file private then.
+SECRET = None
 START_DELAY_MS = 1500  # Ctrl-C still works during this pause, so tools can break in
 STOP_HOLD_MS = 2000
 
@@ -55,10 +58,10 @@ def make_link(kind, name):
     return UsbSerialLink()
 
 
-def build(config=CONFIG, link=None, clock=None, robot_id=ROBOT_ID):
+def build(config=CONFIG, link=None, clock=None, robot_id=ROBOT_ID, secret=SECRET):
     """The board, the link and the listener with the team's routines registered."""
     board = MachineBoard(config, link if link is not None else make_link(LINK, robot_id), clock=clock)
-    listener = Listener(board, robot_id=robot_id)
+    listener = Listener(board, robot_id=robot_id, secret=secret)
 
     # A team routine: run it from a suite like an action, e.g. action = "square".
     @listener.routine("square", {"side_mm": ("num", 200.0, 20.0, 2000.0),

@@ -41,6 +41,10 @@ def is_finite_number(value):
     return not isinstance(value, bool) and isinstance(value, (int, float)) and value - value == 0
 
 
+def is_whole(value):
+    return not isinstance(value, bool) and isinstance(value, int)
+
+
 def deg_per_mm(geometry):
     """Motor degrees per millimetre of travel, with the distance correction factor."""
     return 360.0 / (math.pi * geometry["wheel_diameter_mm"]) * geometry["distance_scale"]
@@ -49,6 +53,15 @@ def deg_per_mm(geometry):
 def spin_motor_deg(angle_deg, geometry):
     """Motor degrees on each wheel for a spin turn about the axle midpoint."""
     return angle_deg * geometry["track_mm"] / geometry["wheel_diameter_mm"] * geometry["spin_scale"]
+
+
+def encoder_heading_deg(left_deg, right_deg, geometry):
+    """Heading change (clockwise) the wheel encoders imply: the inverse of spin_motor_deg, so a
+    spin turn of a degrees reads back as a."""
+    return (
+        (left_deg - right_deg) * geometry["wheel_diameter_mm"]
+        / (2.0 * geometry["track_mm"] * geometry["spin_scale"])
+    )
 
 
 def pivot_motor_deg(angle_deg, geometry):

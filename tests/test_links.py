@@ -192,18 +192,36 @@ def test_a_wrong_or_missing_secret_is_refused(hub_secret, host_secret, words):
         _hello(_sim_with_secret(hub_secret), host_secret)
 
 
-def test_a_replayed_proof_is_refused():
-    # A listener in the room records a good hello and plays it back later: the challenge was for one try.
+def test_a_recorded_hello_cannot_be_replayed():
+    # Someone in the room records the host's good hello from the air and plays it back later:
+    # its challenge was good for one try, so the hub asks for new proof instead.
+    sent = bytearray()
     sim = _sim_with_secret("s3cret")
-    _hello(sim, "s3cret")
-    challenge = "00" * 16
-    replay = {"proto": wire.PROTOCOL_VERSION, "session": "auth-test", "challenge": challenge,
-              "auth": auth.proof("s3cret", "host", challenge, "auth-test")}
+    _hello(sim, "s3cret", sent)
+    hellos = [(seq, body) for t, seq, body in wire.FrameReader().feed(bytes(sent))
+              if t == wire.HELLO and b'"auth"' in body]
+    assert len(hellos) == 1
+    seq, body = hellos[0]
     sim.board.tx.clear()
-    sim.board.rx.extend(wire.encode_message(wire.HELLO, 77, replay))
+    sim.board.rx.extend(wire.encode_frame(wire.HELLO, seq + 100, body))
     sim.run_for(20000)
     replies = [wire.decode_json(b) for t, _, b in wire.FrameReader().feed(bytes(sim.board.tx)) if t == wire.REFUSE]
-    assert replies and replies[0]["code"] == "auth"
+    assert [r["code"] for r in replies] == ["auth"]
+
+
+def test_a_quiet_host_must_prove_the_secret_again():
+    sim = _sim_with_secret("s3cret")
+    _, session = _hello(sim, "s3cret")
+    sim.run_for(800_000)  # longer than the watchdog with nothing from the host
+    # Another host, which never proved anything, tries to drive the robot: refused.
+    sim.board.tx.clear()
+    sim.board.rx.extend(wire.encode_message(wire.START, 40, {"action": "turn", "params": {"angle_deg": 90}}))
+    sim.run_for(20000)
+    replies = [wire.decode_json(b) for t, _, b in wire.FrameReader().feed(bytes(sim.board.tx)) if t == wire.REFUSE]
+    assert [r["code"] for r in replies] == ["no_hello"] and sim.robot.travel_mm == 0
+    sim.board.tx.clear()
+    # The team's own session says hello again by itself and goes on.
+    assert session.run("turn", {"angle_deg": 45, "using": "gyro"}).status == "done"
 
 
 def test_wrong_robot_names_who_answered():
@@ -236,6 +254,64 @@ def test_without_resend_a_lost_batch_shows_as_dropped():
     record = session.run("follow_line", sim.profile.action_defaults("follow_line", {"distance_mm": 400}))
     assert record.telemetry.dropped > 0
     assert record.telemetry.dropped + len(record.telemetry) == record.result["samples"]
+
+
+class _LoseFrames(SimLink):
+    """The simulated link, losing the first hub frames of the given types (once each)."""
+
+    def __init__(self, sim, types):
+        super().__init__(sim)
+        self.to_lose = list(types)
+
+    def read(self, timeout_s):
+        out = bytearray()
+        for frame in _split_frames(super().read(timeout_s)):
+            kinds = [t for t, _, _ in wire.FrameReader().feed(frame)]
+            if kinds and kinds[0] in self.to_lose:
+                self.to_lose.remove(kinds[0])
+                continue
+            out += frame
+        return bytes(out)
+
+
+def _split_frames(data):
+    return [part + b"\x00" for part in data.split(b"\x00") if part]
+
+
+def test_a_lost_result_is_fetched_again():
+    sim = Simulation.from_files(seed=6)
+    session = Session(_LoseFrames(sim, [wire.RESULT]), session_id="lost-result")
+    session.hello(geometry=sim.profile.geometry())
+    started = sim.t_us
+    record = session.run("turn", {"angle_deg": 90, "using": "gyro"})
+    assert record.status == "done" and abs(record.result["heading_change_deg"] - 90) < 4
+    # Found by the next pong (every watchdog/4), not by the 35 s result timeout.
+    assert (sim.t_us - started) / 1e6 < record.result["duration_s"] + 0.5
+
+
+def test_a_lost_event_is_fetched_again_and_counted_once():
+    sim = Simulation.from_files(seed=6)
+    session = Session(_LoseFrames(sim, [wire.EVENT]), session_id="lost-event")
+    session.hello(geometry=sim.profile.geometry())
+    params = sim.profile.action_defaults("follow_line", {"junctions": 2, "side": "any", "overrun_mm": 40})
+    record = session.run("follow_line", params)
+    assert record.status == "done" and record.frames_lost == 1
+    assert [e["kind"] for e in record.events].count("junction") == 2
+
+
+def test_a_retransmitted_resend_sends_the_batches_once():
+    sim, session = connect()
+    session.run("turn", {"angle_deg": 90, "using": "gyro"})
+    sim.board.tx.clear()
+    frame = wire.encode_message(wire.RESEND, 500, {"ranges": [[0, 100]]})
+    sim.board.rx.extend(frame)
+    sim.run_for(20000)
+    sim.board.rx.extend(frame)  # the host heard no answer and asks again
+    sim.run_for(20000)
+    kinds = [t for t, _, _ in wire.FrameReader().feed(bytes(sim.board.tx))]
+    assert kinds.count(wire.ACK) == 2 and kinds.count(wire.TELEMETRY) > 0
+    first_ack = kinds.index(wire.ACK)
+    assert wire.TELEMETRY not in kinds[first_ack:]
 
 
 def test_the_hub_button_stops_a_move_at_once():

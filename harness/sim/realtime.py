@@ -33,7 +33,7 @@ def add_sim_routines(sim: Simulation) -> None:
 
 
 class RealtimeHub:
-    def __init__(self, sim: Simulation, send: Callable[[bytes], None], *, baud: int | None = None,
+    def __init__(self, sim: Simulation, send: Callable[[bytes], int], *, baud: int | None = None,
                  tx_buffer: int = DEFAULT_TX_BUFFER) -> None:
         self.sim = sim
         self.send = send
@@ -69,9 +69,8 @@ class RealtimeHub:
     def _run(self) -> None:
         try:
             self._loop()
-        except BaseException as exc:  # kept for whoever runs the hub; the thread must not vanish silently
+        except BaseException as exc:  # kept for whoever runs the hub, who reports it
             self.error = exc
-            raise
 
     def _loop(self) -> None:
         sim, board = self.sim, self.sim.board
@@ -97,8 +96,7 @@ class RealtimeHub:
             else:
                 count = len(tx)
             if count:
-                chunk = bytes(tx[:count])
-                del tx[:count]
-                self.send(chunk)
+                # send() says how much it took; the rest stays queued, so link_room() feels it.
+                del tx[: self.send(bytes(tx[:count]))]
             last = now
             time.sleep(_LOOP_S)

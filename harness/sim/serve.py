@@ -13,6 +13,7 @@ import threading
 from collections.abc import Iterator
 
 from harness.errors import LinkError
+from harness.links.base import check_baud
 from harness.profile import load_profile
 from harness.sim import DEFAULT_COURSE, DEFAULT_PROFILE, Simulation
 from harness.sim.course import load_course
@@ -31,14 +32,17 @@ def serve_pty(sim: Simulation, baud: int | None = None) -> Iterator[tuple[str, R
     tty.setraw(slave)
     os.set_blocking(master, False)
 
-    def send(data: bytes) -> None:
+    def send(data: bytes) -> int:
+        """Bytes taken: what the pty accepted, or all of them when nobody reads (lost, as on a
+        USB port with no host connected)."""
         try:
-            os.write(master, data)
+            return os.write(master, data)
         except BlockingIOError:
-            pass  # nobody is reading: the bytes are lost, as on a USB port with no host
+            return len(data)
         except OSError as exc:
             if exc.errno != errno.EIO:
                 raise
+            return len(data)
 
     hub = RealtimeHub(sim, send, baud=baud)
     stop = threading.Event()
@@ -58,19 +62,23 @@ def serve_pty(sim: Simulation, baud: int | None = None) -> Iterator[tuple[str, R
                 hub.feed(data)
 
     reader = threading.Thread(target=pump, name="pty-reader", daemon=True)
-    with hub:
-        reader.start()
-        try:
-            # The slave stays open here too, so the pty lives on while hosts come and go.
-            yield os.ttyname(slave), hub
-        finally:
-            stop.set()
-            reader.join(timeout=2)
-    os.close(master)
-    os.close(slave)
+    try:
+        with hub:
+            reader.start()
+            try:
+                # The slave stays open here too, so the pty lives on while hosts come and go.
+                yield os.ttyname(slave), hub
+            finally:
+                stop.set()
+                reader.join(timeout=2)
+    finally:
+        os.close(master)
+        os.close(slave)
 
 
 def serve_on_pty(args: argparse.Namespace) -> int:
+    if args.baud is not None:
+        check_baud(args.baud, key="--baud")
     profile = load_profile(args.robot or DEFAULT_PROFILE)
     course = load_course(args.course or DEFAULT_COURSE)
     sim = Simulation(course, profile, seed=args.seed)
