@@ -12,6 +12,8 @@ from typing import Any
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
+from harness.calibrate import add_calibrate_parser
+from harness.compare import add_parser as add_compare_parser
 from harness.errors import InputError, TrackproofError
 from harness.links import SimLink, parse_faults
 from harness.profile import load_profile
@@ -21,6 +23,7 @@ from harness.session import Session
 from harness.sim import DEFAULT_COURSE, DEFAULT_PROFILE, SUITES_DIR, Simulation, truth_report, truth_snapshot
 from harness.sim.course import load_course
 from harness.store import DEFAULT_DB, Store
+from harness.tuning import add_parser as add_tune_parser
 from harness.suites import load_suite, stored_cases
 from hub_side.actions import BUILTINS
 from hub_side.motion import ParamError, check_params
@@ -315,6 +318,9 @@ def build_parser() -> argparse.ArgumentParser:
     show.add_argument("session", metavar="SESSION", help="session id, a unique prefix, or latest")
     show.add_argument("--db", type=Path, default=Path(DEFAULT_DB))
     show.set_defaults(func=cmd_show)
+    add_calibrate_parser(sub)
+    add_tune_parser(sub)
+    add_compare_parser(sub)
     links = sub.add_parser("links", help="list USB serial ports (and Bluetooth LE hubs) a hub may be on")
     links.add_argument("--ble", action="store_true", help="also scan for Bluetooth LE hubs")
     links.add_argument("--timeout", type=float, default=5.0, help="Bluetooth LE scan time in seconds (default 5)")

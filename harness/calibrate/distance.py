@@ -315,7 +315,7 @@ def add_parser(calibrate_sub: argparse._SubParsersAction) -> None:
     p = calibrate_sub.add_parser(
         "distance", help="fit the distance correction factor and the stop overrun by speed",
         description="Drive known distances at several speeds, fit distance_scale (motor degrees per mm "
-                    "against the nominal wheel) with a 95 %% confidence interval, and show how the stop "
+                    "against the nominal wheel) with a 95 % confidence interval, and show how the stop "
                     "overrun grows with speed. Exit codes: 0 done, 1 too few usable runs, 2 bad input, "
                     "3 link failure, 130 stopped.")
     add_robot_options(p, repeat=3)

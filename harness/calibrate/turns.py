@@ -283,7 +283,7 @@ def add_parser(calibrate_sub: argparse._SubParsersAction) -> None:
         "turns", help="fit spin_scale and pivot_scale from gyro-measured turns",
         description="Turn by the encoders through several angles both ways, measure each heading change "
                     "with the gyro, and fit spin_scale and pivot_scale (with a fixed offset when the data "
-                    "ask for one) with 95 %% intervals and residuals. Exit codes: 0 done, 1 too few usable "
+                    "ask for one) with 95 % intervals and residuals. Exit codes: 0 done, 1 too few usable "
                     "turns, 2 bad input, 3 link failure, 130 stopped.")
     add_robot_options(p, repeat=2)
     p.add_argument("--angles", type=number_list(0, 1080), default=list(DEFAULT_ANGLES),
