@@ -1,0 +1,768 @@
+"""`trackproof tune`: line-follower gains by the Ziegler-Nichols ultimate-sensitivity method.
+
+Proportional-only following on a straight stretch, at a fixed speed for a fixed time, with Kp
+raised in geometric steps until the controller error oscillates steadily; then bisection between
+the last steady gain and the first oscillating one gives the ultimate gain Ku, and the oscillation
+there its period Tu. Gains follow from the Ziegler-Nichols (1942) table and gentler published
+rules beside it, and each candidate is driven several times to see which tracks best.
+
+How a run is judged (oscillation_of): after the first `skip_s` the error's half-cycles are cut by
+zero crossings with hysteresis; the period comes from the crossings (and, as a cross-check, from
+the spectrum's peak); growth per cycle from the peak amplitudes early and late in the run. A run
+oscillates steadily ("sustained") when its peaks no longer shrink (growth >= 1 - tolerance) and
+stay above a floor that sensor noise alone does not reach; it "grows" when they swell, or when the
+guard stopped the robot.
+
+The guard watches the telemetry while the robot runs (a tap on the session's link: Session.run
+has no per-batch callback) and stops the robot at once when the follower loses the line (all its
+sensors light) or when the error swings past a limit on several half-cycles in a row.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from harness.errors import InputError, TrackproofError
+from harness.links.base import Link
+from harness.profile import RobotProfile, load_profile
+from harness.robot import RobotConnector
+from harness.session import RunRecord, Session
+from harness.sim import SUITES_DIR
+from harness.telemetry import decode_batches
+from hub_side import wire
+
+Ask = Callable[[str], str]
+
+TUNING_COURSE = SUITES_DIR / "tuning_straight.toml"
+TELEMETRY_HZ = 100
+
+
+class TuneFailed(TrackproofError):
+    """The procedure could not find what it looks for (no oscillation, or one from the start)."""
+
+
+# ------------------------------------------------------------------ oscillation analysis
+
+
+def half_cycles(e: np.ndarray, hysteresis: float) -> tuple[list[int], list[int]]:
+    """Split a zero-mean signal into half-cycles: a half-cycle starts when the signal passes
+    +hysteresis or -hysteresis on the side opposite the last one. Returns (indices where each new
+    half-cycle starts, index of the largest |value| of each completed half-cycle)."""
+    starts: list[int] = []
+    peaks: list[int] = []
+    side = 0
+    peak = -1
+    for i, v in enumerate(e):
+        s = 1 if v > hysteresis else -1 if v < -hysteresis else 0
+        if s and s != side:
+            if side != 0:
+                peaks.append(peak)
+            starts.append(i)
+            side, peak = s, i
+        elif s and s == side and abs(v) > abs(e[peak]):
+            peak = i
+    return starts, peaks
+
+
+def crossing_times(t: np.ndarray, e: np.ndarray, starts: list[int]) -> np.ndarray:
+    """For each half-cycle start after the first, when the signal crossed zero on the way:
+    linear interpolation between the last two samples of opposite sign before it."""
+    times = []
+    for i in starts[1:]:
+        j = i
+        sign = np.sign(e[i])
+        while j > 0 and np.sign(e[j - 1]) == sign:
+            j -= 1
+        if j == 0:
+            continue
+        a, b = e[j - 1], e[j]
+        frac = a / (a - b) if a != b else 0.0
+        times.append(t[j - 1] + frac * (t[j] - t[j - 1]))
+    return np.asarray(times, dtype=float)
+
+
+def zero_crossing_period(t: np.ndarray, e: np.ndarray, hysteresis: float) -> float:
+    """Period from the mean spacing of zero crossings (two per cycle); NaN with fewer than three.
+
+    A half-cycle too small to pass the hysteresis hides two crossings and leaves a gap of about
+    three half-periods: spacings far from the median are left out."""
+    starts, _ = half_cycles(e, hysteresis)
+    times = crossing_times(t, e, starts)
+    if len(times) < 3:
+        return math.nan
+    gaps = np.diff(times)
+    middle = float(np.median(gaps))
+    kept = gaps[(gaps > 0.6 * middle) & (gaps < 1.4 * middle)]
+    return 2.0 * float(np.mean(kept)) if len(kept) else math.nan
+
+
+def spectrum_period(t: np.ndarray, e: np.ndarray, min_period_s: float = 0.0) -> float:
+    """Period of the strongest spectral line: Hann window, zero padding, and a parabola through
+    the peak bin and its neighbours on the log magnitude (common practice for spectral peaks).
+    Samples are taken as evenly spaced at their mean interval. NaN for a flat signal."""
+    n = len(e)
+    if n < 8:
+        return math.nan
+    dt = float(t[-1] - t[0]) / (n - 1)
+    x = (e - np.mean(e)) * np.hanning(n)
+    nfft = 1 << int(math.ceil(math.log2(n * 8)))
+    mag = np.abs(np.fft.rfft(x, nfft))
+    freqs = np.fft.rfftfreq(nfft, dt)
+    usable = freqs > 0
+    if min_period_s > 0:
+        usable &= freqs < 1.0 / min_period_s
+    if not usable.any() or mag[usable].max() <= 0:
+        return math.nan
+    k = int(np.flatnonzero(usable)[np.argmax(mag[usable])])
+    if 0 < k < len(mag) - 1 and mag[k - 1] > 0 and mag[k + 1] > 0:
+        a, b, c = np.log(mag[k - 1 : k + 2])
+        denom = a - 2 * b + c
+        shift = 0.5 * (a - c) / denom if denom else 0.0
+    else:
+        shift = 0.0
+    return 1.0 / ((k + shift) * (freqs[1] - freqs[0]))
+
+
+@dataclass(frozen=True)
+class Oscillation:
+    period_s: float  # from zero crossings
+    spectrum_period_s: float
+    half_cycles: int
+    amplitude_early: float  # mean |peak| in the first third of the analysed window
+    amplitude_late: float  # and in the last third
+    growth_per_cycle: float  # late over early amplitude, per period (1 = steady)
+    peak_t_s: tuple[float, ...] = ()
+    peak_abs: tuple[float, ...] = ()
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"period_s": self.period_s, "spectrum_period_s": self.spectrum_period_s,
+                "half_cycles": self.half_cycles, "amplitude_early": self.amplitude_early,
+                "amplitude_late": self.amplitude_late, "growth_per_cycle": self.growth_per_cycle}
+
+
+def oscillation_of(t: np.ndarray, e: np.ndarray, *, skip_s: float = 0.5, hysteresis: float = 3.0) -> Oscillation:
+    """Period and growth of the oscillation in a controller-error record (see the module text)."""
+    t = np.asarray(t, dtype=float)
+    e = np.asarray(e, dtype=float)
+    keep = t >= (t[0] if len(t) else 0.0) + skip_s
+    t, e = t[keep], e[keep]
+    if len(e) < 8:
+        return Oscillation(math.nan, math.nan, 0, 0.0, 0.0, 0.0)
+    e = e - np.median(e)  # a steady offset (sensors not quite symmetric) is not oscillation
+    starts, peaks = half_cycles(e, hysteresis)
+    period = zero_crossing_period(t, e, hysteresis)
+    spec = spectrum_period(t, e)
+    peak_t = t[peaks]
+    peak_abs = np.abs(e[peaks])
+    third = len(peaks) // 3
+    if third < 1 or not math.isfinite(period):
+        return Oscillation(period, spec, len(peaks), 0.0, 0.0, 0.0, tuple(peak_t), tuple(peak_abs))
+    early, late = peak_abs[:third], peak_abs[-third:]
+    span_s = float(np.mean(peak_t[-third:]) - np.mean(peak_t[:third]))
+    growth = (float(np.mean(late)) / float(np.mean(early))) ** (period / span_s) if span_s > 0 else 0.0
+    return Oscillation(period, spec, len(peaks), float(np.mean(early)), float(np.mean(late)), growth,
+                       tuple(peak_t), tuple(peak_abs))
+
+
+@dataclass(frozen=True)
+class Judgement:
+    tolerance: float = 0.015  # growth per cycle within this of 1 counts as steady
+    min_amplitude: float = 10.0  # error units (reflectance %); sensor noise alone stays below
+
+    def verdict(self, osc: Oscillation, guard: str | None) -> str:
+        """damped, sustained, growing, or lost (the line lost with no oscillation to blame)."""
+        oscillating = osc.half_cycles >= 4 and osc.growth_per_cycle >= 1.0 - self.tolerance
+        if guard == "limit":
+            return "growing"
+        if guard == "lost":
+            return "growing" if oscillating or osc.amplitude_late >= self.min_amplitude else "lost"
+        if not oscillating or osc.amplitude_late < self.min_amplitude:
+            return "damped"
+        return "growing" if osc.growth_per_cycle > 1.0 + self.tolerance else "sustained"
+
+
+# ------------------------------------------------------------------ tuning rules
+
+
+@dataclass(frozen=True)
+class Rule:
+    """One row of a tuning table, in the standard form Kp (1 + 1/(Ti s) + Td s), as multiples of
+    Ku and Tu (None: the row has no such term)."""
+
+    name: str
+    kp_ku: float
+    ti_tu: float | None
+    td_tu: float | None
+    source: str
+
+    def gains(self, ku: float, tu: float) -> dict[str, float | None]:
+        kp = self.kp_ku * ku
+        ti = None if self.ti_tu is None else self.ti_tu * tu
+        td = None if self.td_tu is None else self.td_tu * tu
+        return {"kp": kp, "ti_s": ti, "td_s": td, "ki": None if ti is None else kp / ti,
+                "kd": 0.0 if td is None else kp * td}
+
+
+_TL = "Tyreus & Luyben, Ind. Eng. Chem. Res. 31 (1992) [citation from memory]; values from a secondary table"
+
+# REFERENCES.md section 3. Ziegler & Nichols, "Optimum settings for automatic controllers",
+# Trans. ASME 64 (1942) 759-768: the P, PI and PID rows are those of the secondary sources listed
+# there (the paper itself not seen; the PI row confirmed by the Feedback Systems errata).
+RULES: tuple[Rule, ...] = (
+    Rule("ZN P", 0.5, None, None, "Ziegler & Nichols 1942 (secondary sources)"),
+    Rule("ZN PI", 0.45, 1 / 1.2, None, "Ziegler & Nichols 1942; Astrom & Murray errata"),
+    Rule("ZN PID", 0.6, 0.5, 0.125, "Ziegler & Nichols 1942 (secondary sources)"),
+    Rule("ZN PD", 0.8, None, 0.125, "PD row seen only in code, not a primary source [REFERENCES S, code only]"),
+    Rule("Tyreus-Luyben PI", 1 / 3.2, 2.2, None, _TL),
+    Rule("Tyreus-Luyben PID", 1 / 2.2, 2.2, 1 / 6.3, _TL),
+    Rule("no overshoot", 0.2, 0.5, 1 / 3, "folklore, no primary source; values from memory [M]"),
+)
+
+# What the hub's follow_line can run: kp * e + kd * de/dt (no integral term).
+HUB_ROWS = ("ZN P", "ZN PD", "ZN PID", "Tyreus-Luyben PID", "no overshoot")
+
+
+@dataclass(frozen=True)
+class Candidate:
+    name: str
+    kp: float
+    kd: float
+    note: str
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"name": self.name, "kp": self.kp, "kd": self.kd, "note": self.note}
+
+
+def rule_table(ku: float, tu: float) -> list[dict[str, Any]]:
+    """Every row with its gains (for the report)."""
+    return [dict(rule=r.name, source=r.source, **r.gains(ku, tu)) for r in RULES]
+
+
+def hub_candidates(ku: float, tu: float) -> list[Candidate]:
+    """The rows the hub's PD follower can run. Its derivative term is kd * de/dt with de/dt per
+    second, so kd = Kp * Td; rows with an integral term lose it (noted), which on a straight line
+    costs nothing: steering already integrates twice from error to lateral offset."""
+    out = []
+    for rule in RULES:
+        if rule.name not in HUB_ROWS:
+            continue
+        g = rule.gains(ku, tu)
+        note = rule.source
+        if g["ti_s"] is not None:
+            note = f"integral (Ti = {g['ti_s']:.3f} s) dropped: the hub's follower is PD; {note}"
+        out.append(Candidate(rule.name, float(g["kp"]), float(g["kd"]), note))
+    return out
+
+
+# ------------------------------------------------------------------ the guard
+
+
+class Guard:
+    """Decides, sample by sample, when to stop the robot: the line lost (every follow sensor
+    light for lost_s), or the oscillation grown past the limit: `limit_half_cycles` half-cycles
+    in a row peaking above it, the last no smaller than the first (a start-up swing that is
+    already dying out is left alone)."""
+
+    def __init__(self, sensor_columns: list[int], light_pct: float, limit: float, *,
+                 lost_s: float = 0.1, limit_half_cycles: int = 4, hysteresis: float = 3.0) -> None:
+        self.columns = sensor_columns
+        self.light_pct = light_pct
+        self.limit = limit
+        self.lost_s = lost_s
+        self.limit_half_cycles = limit_half_cycles
+        self.hysteresis = hysteresis
+        self.reason: str | None = None
+        self.tripped_at_s: float | None = None
+        self._light_since: float | None = None
+        self._side = 0
+        self._peak = 0.0
+        self._big: list[float] = []  # peaks of the latest half-cycles in a row above the limit
+
+    def feed(self, t_s: np.ndarray, error: np.ndarray, reflectance: np.ndarray) -> str | None:
+        for k in range(len(t_s)):
+            if self.reason is not None:
+                break
+            t = float(t_s[k])
+            if all(reflectance[k, c] >= self.light_pct for c in self.columns):
+                self._light_since = t if self._light_since is None else self._light_since
+                if t - self._light_since >= self.lost_s:
+                    self._trip("lost", t)
+                    continue
+            else:
+                self._light_since = None
+            v = float(error[k])
+            s = 1 if v > self.hysteresis else -1 if v < -self.hysteresis else 0
+            if s and s != self._side:
+                if self._side != 0:  # a half-cycle just ended: was its peak past the limit?
+                    if self._peak >= self.limit:
+                        self._big = (self._big + [self._peak])[-self.limit_half_cycles:]
+                    else:
+                        self._big = []
+                    if len(self._big) >= self.limit_half_cycles and self._big[-1] >= self._big[0]:
+                        self._trip("limit", t)
+                        continue
+                self._side, self._peak = s, abs(v)
+            elif s == self._side and s:
+                self._peak = max(self._peak, abs(v))
+        return self.reason
+
+    def _trip(self, reason: str, t: float) -> None:
+        self.reason = reason
+        self.tripped_at_s = t
+
+
+class _TapLink(Link):
+    """The session's link with a listener on the bytes that come in (it never changes them)."""
+
+    def __init__(self, inner: Link, on_bytes: Callable[[bytes], None]) -> None:
+        self.inner = inner
+        self.on_bytes = on_bytes
+        self.name = inner.name
+
+    def write(self, data: bytes) -> None:
+        self.inner.write(data)
+
+    def read(self, timeout_s: float) -> bytes:
+        data = self.inner.read(timeout_s)
+        if data:
+            self.on_bytes(data)
+        return data
+
+    def now(self) -> float:
+        return self.inner.now()
+
+    def close(self) -> None:
+        self.inner.close()
+
+
+def guarded_run(session: Session, params: dict[str, Any], guard: Guard) -> RunRecord:
+    """follow_line with the guard watching each telemetry batch as it arrives; when it trips the
+    robot is told to stop there and then, and the run ends with status "stopped"."""
+    assert session.hub is not None
+    sensors = session.hub.sensors
+    reader = wire.FrameReader()
+
+    def watch(data: bytes) -> None:
+        if guard.reason is not None:
+            return
+        for msg_type, _seq, body in reader.feed(data):
+            if msg_type != wire.TELEMETRY:
+                continue
+            try:
+                batch = decode_batches([bytes(body)], sensors)
+            except wire.FrameError:
+                continue
+            if guard.feed(np.asarray(batch.t_s), np.asarray(batch.error_pct), np.asarray(batch.reflectance_pct)):
+                session.stop_robot()
+                return
+
+    inner = session.link
+    session.link = _TapLink(inner, watch)
+    try:
+        return session.run("follow_line", params, telemetry_hz=TELEMETRY_HZ)
+    finally:
+        session.link = inner
+
+
+# ------------------------------------------------------------------ the procedure
+
+
+@dataclass(frozen=True)
+class TuneSettings:
+    direction: str = "forward"
+    speed_pct: float = 40.0
+    time_s: float = 5.0
+    kp_start: float = 0.1
+    step: float = 1.5
+    kp_max: float = 100.0  # the hub's own limit for kp
+    bisections: int = 4
+    verify_runs: int = 5
+    skip_s: float = 0.5
+    limit: float | None = None  # |error| for the guard; None: from the sensor count
+    judgement: Judgement = field(default_factory=Judgement)
+
+
+@dataclass(frozen=True)
+class Trial:
+    kp: float
+    kd: float
+    status: str
+    guard: str | None
+    guard_at_s: float | None
+    duration_s: float
+    oscillation: Oscillation
+    verdict: str
+    error_rms: float
+
+    @property
+    def unstable(self) -> bool:
+        return self.verdict in ("sustained", "growing")
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"kp": self.kp, "kd": self.kd, "status": self.status, "guard": self.guard,
+                "guard_at_s": self.guard_at_s, "duration_s": self.duration_s, "verdict": self.verdict,
+                "error_rms": self.error_rms, "oscillation": self.oscillation.as_dict()}
+
+
+@dataclass(frozen=True)
+class Ultimate:
+    ku: float  # geometric middle of the final bracket
+    kp_stable: float  # highest gain seen steady
+    kp_oscillating: float  # lowest gain seen oscillating
+    tu_s: float  # period at kp_oscillating, from zero crossings
+    tu_spectrum_s: float
+    trials: tuple[Trial, ...]
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"ku": self.ku, "kp_stable": self.kp_stable, "kp_oscillating": self.kp_oscillating,
+                "tu_s": self.tu_s, "tu_spectrum_s": self.tu_spectrum_s,
+                "trials": [t.as_dict() for t in self.trials]}
+
+
+@dataclass(frozen=True)
+class Verification:
+    candidate: Candidate
+    rms: tuple[float, ...]
+    verdicts: tuple[str, ...]
+
+    @property
+    def mean(self) -> float:
+        return float(np.mean(self.rms))
+
+    @property
+    def sd(self) -> float:
+        return float(np.std(self.rms, ddof=1)) if len(self.rms) > 1 else math.nan
+
+    @property
+    def clean(self) -> bool:
+        """Every run finished on the line without steady oscillation."""
+        return all(v == "damped" for v in self.verdicts)
+
+    def as_dict(self) -> dict[str, Any]:
+        return {**self.candidate.as_dict(), "rms": list(self.rms), "mean_rms": self.mean, "sd_rms": self.sd,
+                "verdicts": list(self.verdicts), "clean": self.clean}
+
+
+def error_rms(record: RunRecord) -> float:
+    e = np.asarray(record.telemetry.error_pct, dtype=float)
+    return float(np.sqrt(np.mean(e * e))) if len(e) else math.nan
+
+
+class Tuner:
+    """Runs the trials on one robot. On the simulator each run starts from the course's start
+    (re-placed, with its placement error); on a real robot the operator puts it back."""
+
+    def __init__(self, connector: RobotConnector, settings: TuneSettings, ask: Ask = input,
+                 on_trial: Callable[[Trial], None] | None = None) -> None:
+        profile = connector.profile
+        follow = profile.follow.get(settings.direction)
+        if follow is None:
+            raise InputError(f"the profile has no [follow.{settings.direction}] table to tune",
+                             file=profile.source or None, key=f"follow.{settings.direction}")
+        self.connector = connector
+        self.profile = profile
+        self.follow = follow
+        self.settings = settings
+        self.ask = ask
+        self.on_trial = on_trial
+        self.session: Session | None = None
+        self.runs = 0
+
+    # A pair straddling the line can swing its error over the whole white-black span (about 60 %
+    # on a usual mat); one sensor on an edge about half of it.
+    def limit(self) -> float:
+        if self.settings.limit is not None:
+            return self.settings.limit
+        return 45.0 if len(self.follow.sensors) == 2 else 25.0
+
+    def params(self, kp: float, kd: float) -> dict[str, Any]:
+        s = self.settings
+        return self.profile.action_defaults("follow_line", {
+            "direction": s.direction, "kp": kp, "kd": kd, "speed_pct": s.speed_pct, "time_s": s.time_s,
+            "timeout_s": s.time_s + 10.0})
+
+    def trial(self, kp: float, kd: float = 0.0) -> Trial:
+        assert self.session is not None and self.session.hub is not None
+        sim = self.connector.sim
+        if sim is not None:
+            sim.reset()
+        elif self.runs:
+            answer = self.ask(f"Put the robot back at the start of the straight, a little (about 5 mm) to one "
+                              f"side of the line; Enter to run kp={kp:.3f} kd={kd:.4f}, q to quit: ")
+            if answer.strip().lower() == "q":
+                raise TuneFailed("stopped by the operator; nothing written")
+        self.runs += 1
+        sensors = list(self.session.hub.sensors)
+        columns = [sensors.index(name) for name in self.follow.sensors]
+        light = min(99.0, self.profile.threshold_pct + 15.0)
+        # A pair cannot both read light while on the line; one edge sensor can, for a moment,
+        # before the follower finds its edge.
+        lost_s = 0.1 if len(columns) == 2 else 0.5
+        guard = Guard(columns, light, self.limit(), lost_s=lost_s,
+                      hysteresis=self.settings.judgement.min_amplitude / 3)
+        record = guarded_run(self.session, self.params(kp, kd), guard)
+        if record.status not in ("done", "stopped"):
+            raise TuneFailed(f"follow_line at kp={kp:.3f} ended {record.status!r}: {record.result}")
+        if record.status == "stopped" and guard.reason is None:
+            raise TuneFailed("the robot was stopped (its button or the hub) during a tuning run; nothing concluded")
+        tel = record.telemetry
+        # A run the guard cut short is analysed whole: its start is all there is.
+        skip_s = 0.0 if guard.reason else self.settings.skip_s
+        osc = oscillation_of(np.asarray(tel.t_s), np.asarray(tel.error_pct), skip_s=skip_s,
+                             hysteresis=self.settings.judgement.min_amplitude / 3)
+        verdict = self.settings.judgement.verdict(osc, guard.reason)
+        duration = float(record.result.get("duration_s", tel.t_s[-1] if len(tel) else 0.0))
+        out = Trial(kp, kd, record.status, guard.reason, guard.tripped_at_s, duration, osc, verdict,
+                    error_rms(record))
+        if self.on_trial is not None:
+            self.on_trial(out)
+        return out
+
+    def find_ultimate(self) -> Ultimate:
+        s = self.settings
+        trials: list[Trial] = []
+        kp, stable, oscillating = s.kp_start, None, None
+        while kp <= s.kp_max * (1 + 1e-9):
+            t = self.trial(kp)
+            trials.append(t)
+            if t.verdict == "lost":
+                raise TuneFailed(f"the robot lost the line at kp={kp:.3f} without oscillating: check the "
+                                 "start (on the line, a little to one side) or start higher with --kp-start")
+            if t.unstable:
+                oscillating = t
+                break
+            stable = t
+            kp = min(kp * s.step, s.kp_max) if kp < s.kp_max else kp * s.step
+        if oscillating is None:
+            raise TuneFailed(f"no sustained oscillation up to kp={s.kp_max:g}: the loop stays damped at "
+                             f"{s.speed_pct:g} % speed; try a higher --speed-pct")
+        if stable is None:
+            raise TuneFailed(f"already oscillating at the first gain, kp={s.kp_start:g}: start lower with --kp-start")
+        for _ in range(s.bisections):
+            mid = math.sqrt(stable.kp * oscillating.kp)
+            t = self.trial(mid)
+            trials.append(t)
+            if t.unstable:
+                oscillating = t
+            else:
+                stable = t
+        # Tu from the oscillating run nearest Ku whose period could be measured (a run the guard
+        # stopped early may be too short).
+        timed = sorted((t for t in trials if t.unstable and math.isfinite(t.oscillation.period_s)),
+                       key=lambda t: t.kp)
+        tu, tu_spec = ((timed[0].oscillation.period_s, timed[0].oscillation.spectrum_period_s) if timed
+                       else (math.nan, math.nan))
+        return Ultimate(math.sqrt(stable.kp * oscillating.kp), stable.kp, oscillating.kp, tu, tu_spec, tuple(trials))
+
+    def verify(self, candidates: list[Candidate]) -> list[Verification]:
+        out = []
+        for cand in candidates:
+            rms, verdicts = [], []
+            for _ in range(self.settings.verify_runs):
+                t = self.trial(cand.kp, cand.kd)
+                rms.append(t.error_rms)
+                verdicts.append(t.verdict)
+            out.append(Verification(cand, tuple(rms), tuple(verdicts)))
+        return out
+
+    def __enter__(self) -> Tuner:
+        self.session = self.connector.connect()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        if self.session is not None:
+            self.session.close()
+            self.session = None
+
+
+def best_verified(results: list[Verification]) -> Verification | None:
+    """Among the published rows whose runs were all clean, the gentlest (lowest kp) whose mean
+    error RMS is within one standard error of the lowest mean: the "one standard error" rule of
+    Breiman, Friedman, Olshen & Stone, Classification and Regression Trees (1984) [from memory].
+    A few runs cannot tell close rows apart, and the gentler one amplifies sensor noise less."""
+    rows = [v for v in results if v.clean and v.candidate.name != "current"]
+    if not rows:
+        return None
+    best = min(rows, key=lambda v: v.mean)
+    margin = best.sd / math.sqrt(len(best.rms)) if len(best.rms) > 1 else 0.0
+    return min((v for v in rows if v.mean <= best.mean + margin), key=lambda v: v.candidate.kp)
+
+
+@dataclass
+class TuneReport:
+    profile: RobotProfile
+    settings: TuneSettings
+    ultimate: Ultimate
+    table: list[dict[str, Any]]
+    verification: list[Verification]
+    recommended: Verification | None
+
+    def as_dict(self) -> dict[str, Any]:
+        s = self.settings
+        return {"robot": self.profile.id, "direction": s.direction, "speed_pct": s.speed_pct, "time_s": s.time_s,
+                "ultimate": self.ultimate.as_dict(), "rules": self.table,
+                "verification": [v.as_dict() for v in self.verification],
+                "recommended": None if self.recommended is None else self.recommended.as_dict()}
+
+
+def tune(connector: RobotConnector, settings: TuneSettings, ask: Ask = input,
+         on_trial: Callable[[Trial], None] | None = None) -> TuneReport:
+    """Find Ku and Tu, then drive the current gains and every hub-runnable row `verify_runs` times."""
+    with Tuner(connector, settings, ask, on_trial) as tuner:
+        assert tuner.session is not None
+        _confirm(tuner.session, connector, settings, ask)
+        ultimate = tuner.find_ultimate()
+        if not math.isfinite(ultimate.tu_s):
+            raise TuneFailed(f"kp={ultimate.kp_oscillating:.3f} oscillated but no period could be measured")
+        candidates = [Candidate("current", tuner.follow.kp, tuner.follow.kd, "the profile's gains")]
+        candidates += hub_candidates(ultimate.ku, ultimate.tu_s)
+        verification = tuner.verify(candidates) if settings.verify_runs > 0 else []
+    return TuneReport(connector.profile, settings, ultimate, rule_table(ultimate.ku, ultimate.tu_s),
+                      verification, best_verified(verification))
+
+
+def _confirm(session: Session, connector: RobotConnector, settings: TuneSettings, ask: Ask) -> None:
+    from harness.runner import SAFETY_NOTE
+
+    hub = session.hub
+    if hub is None or hub.board.get("simulated"):
+        return
+    answer = ask(f"About to tune {connector.profile.id} over {connector.link_name}: follow_line at "
+                 f"{settings.speed_pct:g} % for {settings.time_s:g} s per run, Kp raised from "
+                 f"{settings.kp_start:g} until the robot oscillates, then about {5 * settings.verify_runs + 12} "
+                 "more runs. Put it on a straight line at least 1.5 m long, a little (about 5 mm) to one side "
+                 "of the line. It stops by itself when it loses the line; Ctrl-C stops it at any time.\n"
+                 f"{SAFETY_NOTE}\nType yes to start: ")
+    if answer.strip().lower() not in ("y", "yes"):
+        raise TuneFailed("not started; nothing moved")
+
+
+# ------------------------------------------------------------------ command line
+
+
+def print_report(report: TuneReport) -> None:
+    u, s = report.ultimate, report.settings
+    print(f"Tuning {report.profile.id}, follow {s.direction} at {s.speed_pct:g} % for {s.time_s:g} s per run")
+    for t in u.trials:
+        osc = t.oscillation
+        guard = f", stopped by the guard ({t.guard}) at {t.guard_at_s:.2f} s" if t.guard else ""
+        print(f"  kp {t.kp:8.4f}: {t.verdict:9} period {osc.period_s:6.3f} s, growth/cycle "
+              f"{osc.growth_per_cycle:5.3f}, amplitude {osc.amplitude_early:5.1f} -> {osc.amplitude_late:5.1f}{guard}")
+    print(f"Ultimate gain Ku = {u.ku:.4f} (steady at {u.kp_stable:.4f}, oscillating at {u.kp_oscillating:.4f}); "
+          f"period Tu = {u.tu_s:.4f} s (spectrum {u.tu_spectrum_s:.4f} s)")
+    print("Rules (standard form Kp, Ti, Td; the hub runs kp and kd = Kp*Td):")
+    for row in report.table:
+        ti = "-" if row["ti_s"] is None else f"{row['ti_s']:.4f}"
+        td = "-" if row["td_s"] is None else f"{row['td_s']:.4f}"
+        print(f"  {row['rule']:18} Kp {row['kp']:7.4f}  Ti {ti:>7}  Td {td:>7}  kd {row['kd']:7.5f}  ({row['source']})")
+    print("  The hub's follower is PD (kp, kd): rows with an integral term run without it; on a straight "
+          "line the steering already integrates twice from error to offset.")
+    if report.verification:
+        print(f"Verification, {s.verify_runs} runs each (error RMS over the run, %):")
+        for v in report.verification:
+            flag = "" if v.clean else "  not clean: " + ", ".join(sorted(set(v.verdicts) - {"damped"}))
+            print(f"  {v.candidate.name:18} kp {v.candidate.kp:7.4f} kd {v.candidate.kd:7.5f}: "
+                  f"mean {v.mean:6.2f} sd {v.sd:5.2f}{flag}")
+    rec = report.recommended
+    if rec is None:
+        print("No published row ran clean on every run: keep the current gains.")
+    else:
+        current = next((v for v in report.verification if v.candidate.name == "current"), None)
+        versus = (f" (current gains: {current.mean:.2f} sd {current.sd:.2f})" if current is not None else "")
+        print(f"Recommended: {rec.candidate.name}: kp {rec.candidate.kp:.4f}, kd {rec.candidate.kd:.5f}; error RMS "
+              f"{rec.mean:.2f} sd {rec.sd:.2f}{versus}. The gentlest row within one standard error of the "
+              f"best; gains hold for this speed ({s.speed_pct:g} %).")
+
+
+def cmd_tune(args: argparse.Namespace, ask: Ask = input) -> int:
+    if args.write and args.robot is None:
+        raise InputError("needs --robot PATH: the profile to update (the bundled example is never "
+                         "written)", key="--write")
+    if not 0 < args.kp_start <= 100:
+        raise InputError(f"must be in (0, 100], got {args.kp_start:g}", key="--kp-start")
+    if not 1.05 <= args.step <= 4:
+        raise InputError(f"must be between 1.05 and 4, got {args.step:g}", key="--step")
+    if args.speed_pct is not None and not 5 <= args.speed_pct <= 100:
+        raise InputError(f"must be between 5 and 100, got {args.speed_pct:g}", key="--speed-pct")
+    if not 1 <= args.time_s <= 60:
+        raise InputError(f"must be between 1 and 60 s, got {args.time_s:g}", key="--time-s")
+    from harness.sim import DEFAULT_PROFILE
+
+    profile = load_profile(args.robot or DEFAULT_PROFILE)
+    follow = profile.follow.get(args.direction)
+    if follow is None:
+        raise InputError(f"the profile has no [follow.{args.direction}] table to tune", file=profile.source,
+                         key=f"follow.{args.direction}")
+    course = args.course
+    if course is None and args.link == "sim":
+        course = TUNING_COURSE
+    connector = RobotConnector(profile, args.link, course=course, seed=args.seed)
+    settings = TuneSettings(direction=args.direction, speed_pct=args.speed_pct or follow.speed_pct,
+                            time_s=args.time_s, kp_start=args.kp_start, step=args.step,
+                            bisections=args.bisections, verify_runs=args.verify_runs, limit=args.limit)
+    report = tune(connector, settings, ask)
+    print_report(report)
+    if args.json:
+        from harness.calibrate.common import write_json
+
+        write_json(args.json, report.as_dict())
+    if args.write:
+        rec = report.recommended
+        if rec is None:
+            print("Nothing written: no recommendation.")
+            return 1
+        from harness.calibrate.writeback import write_profile_table_values
+
+        write_profile_table_values(args.robot, ("follow", args.direction),
+                                   {"kp": round(rec.candidate.kp, 4), "kd": round(rec.candidate.kd, 5)},
+                                   f"trackproof tune: {rec.candidate.name} from Ku {report.ultimate.ku:.4f}, "
+                                   f"Tu {report.ultimate.tu_s:.4f} s at {settings.speed_pct:g} % speed")
+        print(f"Wrote [follow.{args.direction}] kp and kd to {args.robot}")
+    return 0
+
+
+def _positive_int0(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"must be 0 or more, got {value}")
+    return value
+
+
+def add_parser(sub: argparse._SubParsersAction) -> None:
+    from harness.sim import DEFAULT_PROFILE
+
+    p = sub.add_parser(
+        "tune", help="line-follower gains by the Ziegler-Nichols ultimate-gain method",
+        description="Raise the line follower's Kp (proportional only) in steps until the controller error "
+                    "oscillates steadily, find the ultimate gain Ku and period Tu, recommend gains from the "
+                    "Ziegler-Nichols (1942) table and gentler rules, and drive each several times to see which "
+                    "tracks best. The robot is stopped at once if it loses the line or swings too far.")
+    p.add_argument("--robot", type=Path, help=f"robot profile (default {DEFAULT_PROFILE.name}); --write updates it")
+    p.add_argument("--course", type=Path, help=f"course for the simulated link (default {TUNING_COURSE.name})")
+    p.add_argument("--link", default="sim", help="sim, sim:COURSE, serial:PORT[@BAUD], serial:auto or "
+                                                 "ble:NAME_OR_ADDRESS (default sim)")
+    p.add_argument("--seed", type=int, default=0, help="simulator seed (default 0)")
+    p.add_argument("--direction", choices=("forward", "backward"), default="forward",
+                   help="which [follow.*] gains to tune (default forward)")
+    p.add_argument("--speed-pct", type=float, help="speed of every run (default: the profile's speed_pct)")
+    p.add_argument("--time-s", type=float, default=5.0, help="length of every run (default 5 s)")
+    p.add_argument("--kp-start", type=float, default=0.1, help="first Kp (default 0.1)")
+    p.add_argument("--step", type=float, default=1.5, help="factor between Kp steps (default 1.5)")
+    p.add_argument("--bisections", type=_positive_int0, default=4, help="bisection runs for Ku (default 4)")
+    p.add_argument("--verify-runs", type=_positive_int0, default=5,
+                   help="runs per candidate to verify the gains (default 5; 0 skips)")
+    p.add_argument("--limit", type=float, help="guard: stop when |error| passes this on 4 half-cycles in a row "
+                                               "(default 45 for a sensor pair, 25 for one sensor)")
+    p.add_argument("--json", type=Path, metavar="PATH", help="write the full result as JSON here")
+    p.add_argument("--write", action="store_true", help="write the recommended kp and kd into the --robot profile")
+    p.set_defaults(func=cmd_tune)
