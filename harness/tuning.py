@@ -718,12 +718,12 @@ def cmd_tune(args: argparse.Namespace, ask: Ask = input) -> int:
         if rec is None:
             print("Nothing written: no recommendation.")
             return 1
-        from harness.calibrate.writeback import write_profile_table_values
+        from harness.calibrate.writeback import write_profile_values
 
-        write_profile_table_values(args.robot, ("follow", args.direction),
-                                   {"kp": round(rec.candidate.kp, 4), "kd": round(rec.candidate.kd, 5)},
-                                   f"trackproof tune: {rec.candidate.name} from Ku {report.ultimate.ku:.4f}, "
-                                   f"Tu {report.ultimate.tu_s:.4f} s at {settings.speed_pct:g} % speed")
+        write_profile_values(args.robot, {"kp": round(rec.candidate.kp, 4), "kd": round(rec.candidate.kd, 5)},
+                             f"trackproof tune: {rec.candidate.name} from Ku {report.ultimate.ku:.4f}, "
+                             f"Tu {report.ultimate.tu_s:.4f} s at {settings.speed_pct:g} % speed",
+                             table=("follow", args.direction))
         print(f"Wrote [follow.{args.direction}] kp and kd to {args.robot}")
     return 0
 

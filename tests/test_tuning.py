@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 from scipy import signal, stats
 
-from harness.calibrate.writeback import write_profile_table_values
+from harness.calibrate.writeback import write_profile_values
 from harness.errors import InputError
 from harness.profile import load_profile
 from harness.robot import RobotConnector
@@ -295,14 +295,14 @@ def test_cli_refuses_bad_options(tmp_path: Path) -> None:
 def test_table_writeback_adds_missing_keys_and_refuses_missing_tables(tmp_path: Path) -> None:
     robot = tmp_path / "robot.toml"
     robot.write_text((ROOT / "suites" / "practice_robot.toml").read_text().replace("kd = 0.01\n", ""))
-    write_profile_table_values(robot, ("follow", "forward"), {"kp": 1.25, "kd": 0.02}, "test")
+    write_profile_values(robot, {"kp": 1.25, "kd": 0.02}, "test", table=("follow", "forward"))
     written = load_profile(robot)
     assert (written.follow["forward"].kp, written.follow["forward"].kd) == (1.25, 0.02)
     assert "follow.forward.kd added, 0.02: test" in robot.read_text()
     with pytest.raises(InputError, match="no such table"):
-        write_profile_table_values(robot, ("follow", "sideways"), {"kp": 1.0}, "test")
+        write_profile_values(robot, {"kp": 1.0}, "test", table=("follow", "sideways"))
     with pytest.raises(InputError):  # the hub's limit for kp is 100: the result must still load
-        write_profile_table_values(robot, ("follow", "forward"), {"kp": 500.0}, "test")
+        write_profile_values(robot, {"kp": 500.0}, "test", table=("follow", "forward"))
     assert load_profile(robot).follow["forward"].kp == 1.25  # the failed writes left the file alone
 
 

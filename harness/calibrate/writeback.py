@@ -14,6 +14,7 @@ import os
 import re
 import tempfile
 from pathlib import Path
+from typing import Any
 
 import tomlkit
 from tomlkit.exceptions import TOMLKitError
@@ -44,10 +45,11 @@ def _read(path: Path) -> str:
         raise InputError(f"cannot read: {exc}", file=str(path)) from None
 
 
-def updated_profile_text(text: str, values: dict[str, float], note: str, *, file: str = "profile",
-                         today: dt.date | None = None) -> str:
-    """The profile text with each top-level key set to its new value and a dated comment line
-    above it; keys the file lacks are added after its last top-level value."""
+def updated_profile_text(text: str, values: dict[str, float], note: str, *, table: tuple[str, ...] = (),
+                         file: str = "profile", today: dt.date | None = None) -> str:
+    """The profile text with each key set to its new value and a dated comment line above it.
+    Keys are top-level, or inside `table` (e.g. ("follow", "forward") for [follow.forward] kp),
+    which must exist; keys the file lacks are added after the last value there."""
     if not values:
         raise InputError("nothing to write", file=file)
     note = " ".join(note.split())  # one comment line, whatever the caller passed
@@ -57,27 +59,34 @@ def updated_profile_text(text: str, values: dict[str, float], note: str, *, file
         doc = tomlkit.parse(text)
     except TOMLKitError as exc:
         raise InputError(f"not valid TOML: {exc}", file=file) from None
+    container: Any = doc
+    for name in table:
+        inner = container.get(name)
+        if not isinstance(inner, tomlkit.items.Table):
+            raise InputError("no such table to write into", file=file, key=".".join(table))
+        container = inner
+    prefix = "".join(f"{name}." for name in table)
     for key, value in values.items():
+        where = prefix + key
         if not _BARE_KEY.fullmatch(key):
-            raise InputError("not a plain top-level key name", file=file, key=key)
+            raise InputError("not a plain key name", file=file, key=where)
         if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-            raise InputError(f"expected a finite number to write, got {value!r}", file=file, key=key)
-        new = float(value)
-        shown = format_value(new)
-        old = doc.get(key)
-        if key in doc and (isinstance(old, bool) or not isinstance(old, (int, float))):
-            raise InputError(f"holds {type(old).__name__}, not a number; not changed", file=file, key=key)
-        if key in doc:
-            comment = f"# {stamp}: {key} {format_value(float(old))} -> {shown}: {note}"
-            doc[key] = float(shown)
-            item = doc.item(key)
+            raise InputError(f"expected a finite number to write, got {value!r}", file=file, key=where)
+        shown = format_value(float(value))
+        old = container.get(key)
+        if key in container and (isinstance(old, bool) or not isinstance(old, (int, float))):
+            raise InputError(f"holds {type(old).__name__}, not a number; not changed", file=file, key=where)
+        if key in container:
+            comment = f"# {stamp}: {where} {format_value(float(old))} -> {shown}: {note}"
+            container[key] = float(shown)
+            item = container.item(key)
             # The line's own indent goes on both lines, so an indented layout stays indented.
             item.trivia.indent = f"{item.trivia.indent}{comment}{nl}{item.trivia.indent}"
         else:
-            comment = f"# {stamp}: {key} added, {shown}: {note}"
-            last = _last_top_level_value(doc)
+            comment = f"# {stamp}: {where} added, {shown}: {note}"
+            last = _last_value(container)
             if last is None:
-                raise InputError("has no top-level keys to add to", file=file, key=key)
+                raise InputError("has no values to add to", file=file, key=where)
             trail = last.trivia.trail if last.trivia.trail.endswith("\n") else last.trivia.trail + nl
             last.trivia.trail = f"{trail}{comment}{nl}{key} = {shown}{nl}"
     new_text = tomlkit.dumps(doc)
@@ -86,21 +95,22 @@ def updated_profile_text(text: str, values: dict[str, float], note: str, *, file
     return new_text
 
 
-def _last_top_level_value(doc: tomlkit.TOMLDocument) -> Item | None:
+def _last_value(container: Any) -> Item | None:
+    body = container.body if isinstance(container, tomlkit.TOMLDocument) else container.value.body
     last = None
-    for key, item in doc.body:
+    for key, item in body:
         if key is not None and not isinstance(item, (tomlkit.items.Table, tomlkit.items.AoT)):
             last = item
     return last
 
 
-def write_profile_values(path: str | Path, values: dict[str, float], note: str, *,
+def write_profile_values(path: str | Path, values: dict[str, float], note: str, *, table: tuple[str, ...] = (),
                          today: dt.date | None = None) -> str:
-    """Set top-level numbers of the profile at path (e.g. spin_scale) in place, with a dated note
-    per change; returns the new text. The file is replaced atomically and only if the result is
-    a valid profile."""
+    """Set numbers of the profile at path in place (top-level, e.g. spin_scale, or inside
+    `table`), with a dated note per change; returns the new text. The file is replaced
+    atomically and only if the result is a valid profile."""
     path = Path(path)
-    new_text = updated_profile_text(_read(path), values, note, file=str(path), today=today)
+    new_text = updated_profile_text(_read(path), values, note, table=table, file=str(path), today=today)
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
         try:
@@ -113,70 +123,4 @@ def write_profile_values(path: str | Path, values: dict[str, float], note: str, 
             raise
     except OSError as exc:
         raise InputError(f"cannot write: {exc}", file=str(path)) from None
-    return new_text
-
-
-def write_profile_table_values(path: str | Path, table: tuple[str, ...], values: dict[str, float], note: str,
-                               *, today: dt.date | None = None) -> str:
-    """Like write_profile_values, for numbers inside a table, e.g. table ("follow", "forward")
-    for [follow.forward] kp and kd. The table must exist; keys it lacks are added after its
-    last value. Returns the new text; the file is replaced atomically and only if the result is
-    a valid profile."""
-    path = Path(path)
-    file = str(path)
-    text = _read(path)
-    if not values:
-        raise InputError("nothing to write", file=file)
-    note = " ".join(note.split())
-    stamp = (today or dt.date.today()).isoformat()
-    try:
-        doc = tomlkit.parse(text)
-    except TOMLKitError as exc:
-        raise InputError(f"not valid TOML: {exc}", file=file) from None
-    where = ".".join(table)
-    container = doc
-    for name in table:
-        inner = container.get(name) if hasattr(container, "get") else None
-        if not isinstance(inner, tomlkit.items.Table):
-            raise InputError("no such table to write into", file=file, key=where)
-        container = inner
-    for key, value in values.items():
-        if not _BARE_KEY.fullmatch(key):
-            raise InputError("not a plain key name", file=file, key=f"{where}.{key}")
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-            raise InputError(f"expected a finite number to write, got {value!r}", file=file, key=f"{where}.{key}")
-        shown = format_value(float(value))
-        old = container.get(key)
-        if key in container and (isinstance(old, bool) or not isinstance(old, (int, float))):
-            raise InputError(f"holds {type(old).__name__}, not a number; not changed", file=file,
-                             key=f"{where}.{key}")
-        if key in container:
-            comment = f"# {stamp}: {where}.{key} {format_value(float(old))} -> {shown}: {note}"
-            container[key] = float(shown)
-            item = container.item(key)
-            item.trivia.indent = f"{item.trivia.indent}{comment}\n{item.trivia.indent}"
-        else:
-            comment = f"# {stamp}: {where}.{key} added, {shown}: {note}"
-            last = None
-            for k, item in container.value.body:
-                if k is not None and not isinstance(item, (tomlkit.items.Table, tomlkit.items.AoT)):
-                    last = item
-            if last is None:
-                raise InputError("has no values to add to", file=file, key=where)
-            trail = last.trivia.trail if last.trivia.trail.endswith("\n") else last.trivia.trail + "\n"
-            last.trivia.trail = f"{trail}{comment}\n{key} = {shown}\n"
-    new_text = tomlkit.dumps(doc)
-    profile_from_table(parse_toml(new_text, file))
-    try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-        try:
-            with os.fdopen(fd, "wb") as out:
-                out.write(new_text.encode("utf-8"))
-            os.chmod(tmp, path.stat().st_mode & 0o7777)
-            os.replace(tmp, path)
-        except BaseException:
-            os.unlink(tmp)
-            raise
-    except OSError as exc:
-        raise InputError(f"cannot write: {exc}", file=file) from None
     return new_text
