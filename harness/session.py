@@ -13,6 +13,7 @@ from __future__ import annotations
 import secrets
 
 import numpy as np
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -62,6 +63,7 @@ class _Inbox:
     result: dict[str, Any] | None = None
     seen: set[int] = field(default_factory=set)  # hub seqs of this run's event/fault/result frames
     hub_idle: bool = False  # a pong said no action runs: a result we lack was lost on the way
+    on_telemetry: Callable[[bytes], None] | None = None
 
 
 def missing_ranges(index: np.ndarray, expected: int, most: int = 16) -> list[list[int]]:
@@ -147,14 +149,16 @@ class Session:
         return self.hub
 
     def run(self, action: str, params: dict[str, Any] | None = None, *, telemetry_hz: int = 100,
-            timeout_s: float | None = None) -> RunRecord:
-        """Run one action or routine to its end and return everything it reported."""
+            timeout_s: float | None = None,
+            on_telemetry: Callable[[bytes], None] | None = None) -> RunRecord:
+        """Run one action or routine to its end and return everything it reported.
+        on_telemetry sees each telemetry batch body as it arrives (e.g. to stop a run early)."""
         if self.hub is None:
             raise ProtocolError("hello() must come before run()")
         params = dict(params or {})
         inbox = self._inbox
         inbox.events, inbox.faults, inbox.telemetry, inbox.result = [], [], [], None
-        inbox.seen, inbox.hub_idle = set(), False
+        inbox.seen, inbox.hub_idle, inbox.on_telemetry = set(), False, on_telemetry
         lost_before = self.frames_lost
         if timeout_s is None:
             timeout_s = float(params.get("timeout_s", 30.0)) + 5.0
@@ -283,6 +287,8 @@ class Session:
         inbox = self._inbox
         if msg_type == wire.TELEMETRY:
             inbox.telemetry.append(bytes(body))
+            if inbox.on_telemetry is not None:
+                inbox.on_telemetry(inbox.telemetry[-1])
             return
         if msg_type in (wire.EVENT, wire.FAULT, wire.RESULT):
             if seq in inbox.seen:

@@ -13,7 +13,7 @@ oscillates steadily ("sustained") when its peaks no longer shrink (growth >= 1 -
 stay above a floor that sensor noise alone does not reach; it "grows" when they swell, or when the
 guard stopped the robot.
 
-The guard watches the telemetry while the robot runs (a tap on the session's link: Session.run
+The guard watches the telemetry while the robot runs (Session.run's on_telemetry hook
 has no per-batch callback) and stops the robot at once when the follower loses the line (all its
 sensors light) or when the error swings past a limit on several half-cycles in a row.
 """
@@ -30,7 +30,6 @@ from typing import Any
 import numpy as np
 
 from harness.errors import InputError, TrackproofError
-from harness.links.base import Link
 from harness.profile import RobotProfile, load_profile
 from harness.robot import RobotConnector
 from harness.session import RunRecord, Session
@@ -318,57 +317,23 @@ class Guard:
         self.tripped_at_s = t
 
 
-class _TapLink(Link):
-    """The session's link with a listener on the bytes that come in (it never changes them)."""
-
-    def __init__(self, inner: Link, on_bytes: Callable[[bytes], None]) -> None:
-        self.inner = inner
-        self.on_bytes = on_bytes
-        self.name = inner.name
-
-    def write(self, data: bytes) -> None:
-        self.inner.write(data)
-
-    def read(self, timeout_s: float) -> bytes:
-        data = self.inner.read(timeout_s)
-        if data:
-            self.on_bytes(data)
-        return data
-
-    def now(self) -> float:
-        return self.inner.now()
-
-    def close(self) -> None:
-        self.inner.close()
-
-
 def guarded_run(session: Session, params: dict[str, Any], guard: Guard) -> RunRecord:
     """follow_line with the guard watching each telemetry batch as it arrives; when it trips the
     robot is told to stop there and then, and the run ends with status "stopped"."""
     assert session.hub is not None
     sensors = session.hub.sensors
-    reader = wire.FrameReader()
 
-    def watch(data: bytes) -> None:
+    def watch(body: bytes) -> None:
         if guard.reason is not None:
             return
-        for msg_type, _seq, body in reader.feed(data):
-            if msg_type != wire.TELEMETRY:
-                continue
-            try:
-                batch = decode_batches([bytes(body)], sensors)
-            except wire.FrameError:
-                continue
-            if guard.feed(np.asarray(batch.t_s), np.asarray(batch.error_pct), np.asarray(batch.reflectance_pct)):
-                session.stop_robot()
-                return
+        try:
+            batch = decode_batches([body], sensors)
+        except wire.FrameError:
+            return
+        if guard.feed(np.asarray(batch.t_s), np.asarray(batch.error_pct), np.asarray(batch.reflectance_pct)):
+            session.stop_robot()
 
-    inner = session.link
-    session.link = _TapLink(inner, watch)
-    try:
-        return session.run("follow_line", params, telemetry_hz=TELEMETRY_HZ)
-    finally:
-        session.link = inner
+    return session.run("follow_line", params, telemetry_hz=TELEMETRY_HZ, on_telemetry=watch)
 
 
 # ------------------------------------------------------------------ the procedure
