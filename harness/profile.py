@@ -3,6 +3,9 @@
     id = "..."                         # the robot id its hub reports in the hello
     wheel_diameter_mm, track_mm
     distance_scale, spin_scale, pivot_scale   # correction factors (default 1.0)
+    wheel_ratio                               # right over left wheel diameter, UMBmark's E_d
+                                              # (default 1.0, 0.9 to 1.1); wheel_diameter_mm
+                                              # is then their average
     [sensors.NAME] forward_mm, left_mm        # reflectance sensors in the robot frame
     [follow.forward] / [follow.backward]      # sensors (pair listed left first, or one edge
                                               # sensor), edge, kp, kd, speed_pct
@@ -48,6 +51,7 @@ class RobotProfile:
     distance_scale: float = 1.0
     spin_scale: float = 1.0
     pivot_scale: float = 1.0
+    wheel_ratio: float = 1.0  # D_right / D_left around wheel_diameter_mm (calibrate odometry)
     watchdog_ms: int = 500
     baud: int = 115200  # serial links; a link string's @BAUD wins
     secret: str = ""  # shared with the hub: it refuses hosts that cannot prove it
@@ -63,6 +67,7 @@ class RobotProfile:
             "distance_scale": self.distance_scale,
             "spin_scale": self.spin_scale,
             "pivot_scale": self.pivot_scale,
+            "wheel_ratio": self.wheel_ratio,
         }
 
     def action_defaults(self, action: str, params: dict[str, Any]) -> dict[str, Any]:
@@ -100,7 +105,7 @@ def profile_from_table(t: Table) -> RobotProfile:
                   high=GEOMETRY_LIMITS["wheel_diameter_mm"][1])
     track = t.num("track_mm", low=GEOMETRY_LIMITS["track_mm"][0], high=GEOMETRY_LIMITS["track_mm"][1])
     scales = {k: t.num(k, 1.0, low=GEOMETRY_LIMITS[k][0], high=GEOMETRY_LIMITS[k][1])
-              for k in ("distance_scale", "spin_scale", "pivot_scale")}
+              for k in ("distance_scale", "spin_scale", "pivot_scale", "wheel_ratio")}
     sensors_t = t.table("sensors")
     sensors: dict[str, SensorPlace] = {}
     for name in sensors_t.data:

@@ -12,9 +12,9 @@ backward, the sensors lead from the rear and the correction flips.
 from hub_side.motion import (
     clamp,
     encoder_heading_deg,
-    pivot_motor_deg,
+    pivot_wheel_deg,
     ramp_speed_pct,
-    spin_motor_deg,
+    spin_wheel_deg,
 )
 
 _SPEED = ("num", 40.0, 0.0, 100.0)
@@ -217,16 +217,29 @@ def turn(ctx, p):
     angle = p["angle_deg"]
     mode = p["mode"]
     cw = 1 if angle >= 0 else -1
-    # Wheel directions for a clockwise turn; a counter-clockwise turn reverses both.
+    # Wheel directions for a clockwise turn; a counter-clockwise turn reverses both. Each moving
+    # wheel has its own motor-degree target (unequal wheels: the smaller one turns more).
     if mode == "spin":
         left_dir, right_dir = cw, -cw
-        target = abs(spin_motor_deg(angle, ctx.geometry))
+        want_left, want_right = spin_wheel_deg(angle, ctx.geometry)
     elif mode == "pivot_left":
         left_dir, right_dir = 0, -cw
-        target = abs(pivot_motor_deg(angle, ctx.geometry))
+        want_left, want_right = 0.0, pivot_wheel_deg(angle, ctx.geometry)[1]
     else:
         left_dir, right_dir = cw, 0
-        target = abs(pivot_motor_deg(angle, ctx.geometry))
+        want_left, want_right = pivot_wheel_deg(angle, ctx.geometry)[0], 0.0
+    want_left = abs(want_left)
+    want_right = abs(want_right)
+    moving = abs(left_dir) + abs(right_dir)
+    # Progress is counted in the moving wheels' mean target: each wheel's degrees weighted by
+    # target / its own target, so the turn ends when the wheels' mean fraction done reaches 1
+    # (for a spin: when the encoder heading reaches the angle). Equal wheels weigh exactly 1.0.
+    target = (want_left + want_right) / moving
+    weight_left = target / want_left if want_left > 0 else 1.0
+    weight_right = target / want_right if want_right > 0 else 1.0
+    # Power in proportion to each wheel's target, so both wheels finish together.
+    power_left = left_dir / weight_left
+    power_right = right_dir / weight_right
     use_gyro = p["using"] == "gyro"
     if use_gyro:
         target = abs(angle)
@@ -234,20 +247,19 @@ def turn(ctx, p):
     slow = p["slow_deg"] if use_gyro else p["slow_deg"] * target / max(abs(angle), 1e-9)
     start_left, start_right = ctx.encoders()
     start_heading = ctx.heading()
-    moving = abs(left_dir) + abs(right_dir)
     while True:
         if use_gyro:
             progress = (ctx.heading() - start_heading) * cw
         else:
             left, right = ctx.encoders()
-            progress = (abs(left - start_left) + abs(right - start_right)) / moving
+            progress = (abs(left - start_left) * weight_left + abs(right - start_right) * weight_right) / moving
         remaining = target - progress
         if remaining <= 0:
             break
         speed = p["speed_pct"]
         if slow > 0 and remaining < slow:
             speed = max(p["min_pct"], speed * remaining / slow)
-        ctx.set_power(left_dir * speed, right_dir * speed)
+        ctx.set_power(clamp(power_left * speed, -100, 100), clamp(power_right * speed, -100, 100))
         yield
     yield from settle(ctx)
     return {"target_deg": round(target, 2)}

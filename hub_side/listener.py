@@ -13,8 +13,8 @@ params)`, and returns a dict of what it measured.
 from hub_side import auth, wire
 from hub_side.actions import BUILTINS
 from hub_side.board import ticks_diff
-from hub_side.motion import (DEFAULT_GEOMETRY, GEOMETRY_LIMITS, ParamError, check_params, clip, deg_per_mm,
-                             is_finite_number, is_whole, shown)
+from hub_side.motion import (DEFAULT_GEOMETRY, GEOMETRY_LIMITS, ParamError, check_params, clip,
+                             is_finite_number, is_whole, shown, travel_mm)
 
 MAX_TELEMETRY_HZ = 500
 DEFAULT_TELEMETRY_HZ = 100
@@ -42,7 +42,6 @@ class ActionContext:
         self.t_us = 0
         self.error_pct = 0.0
         self._listener = listener
-        self._mm_per_deg = 1.0 / deg_per_mm(listener.geometry)
         self.enc_start = listener.read_encoders()
         self.heading_start = listener.read_heading()
 
@@ -60,10 +59,11 @@ class ActionContext:
         return self._listener.read_reflectance(name)
 
     def distance_mm(self):
-        """Signed travel of the axle midpoint since this action started."""
+        """Signed travel of the axle midpoint since this action started (each wheel at its own
+        millimetres per degree when the geometry's wheel_ratio is not 1)."""
         left, right = self._listener.read_encoders()
         start = self.enc_start
-        return ((left - start[0]) + (right - start[1])) * 0.5 * self._mm_per_deg
+        return travel_mm(left - start[0], right - start[1], self.geometry)
 
     def event(self, kind, fields=None):
         self._listener.send_event(kind, fields)

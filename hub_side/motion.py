@@ -3,6 +3,13 @@
 Kinematics are common practice for a differential drive (no published source needed): one motor
 degree moves a wheel pi * D / 360 mm; a spin turn by angle a needs a * track / D motor degrees on
 each wheel; a pivot turn about one stopped wheel needs twice that on the other wheel.
+
+Unequal wheels: wheel_ratio is E_d = D_R / D_L, UMBmark's wheel-diameter ratio, around the one
+wheel_diameter_mm D taken as their average. Each wheel's diameter is D times its correction factor,
+c_L = 2 / (E_d + 1) and c_R = 2 / (1/E_d + 1) (J. Borenstein, L. Feng, "Measurement and Correction
+of Systematic Odometry Errors in Mobile Robots", IEEE Trans. Robotics and Automation 12(6), 1996;
+REFERENCES.md section 2): c_R / c_L = E_d and (c_L + c_R) / 2 = 1. With E_d = 1.0 both factors
+are exactly 1.0 and every helper below gives, bit for bit, what the equal-wheel formulas give.
 """
 
 import math
@@ -13,6 +20,7 @@ DEFAULT_GEOMETRY = {
     "distance_scale": 1.0,
     "spin_scale": 1.0,
     "pivot_scale": 1.0,
+    "wheel_ratio": 1.0,
 }
 
 
@@ -23,6 +31,7 @@ GEOMETRY_LIMITS = {
     "distance_scale": (0.5, 2.0),
     "spin_scale": (0.5, 2.0),
     "pivot_scale": (0.5, 2.0),
+    "wheel_ratio": (0.9, 1.1),
 }
 _SHOWN_CHARS = 40  # host text echoed in an error is cut here, so a refusal always fits its frame
 
@@ -46,30 +55,76 @@ def is_whole(value):
 
 
 def deg_per_mm(geometry):
-    """Motor degrees per millimetre of travel, with the distance correction factor."""
+    """Motor degrees per millimetre of travel of a wheel of the average diameter, with the
+    distance correction factor."""
     return 360.0 / (math.pi * geometry["wheel_diameter_mm"]) * geometry["distance_scale"]
 
 
+def wheel_factors(geometry):
+    """(c_L, c_R): each wheel's diameter over wheel_diameter_mm (Borenstein & Feng 1996, see
+    the module docstring); both exactly 1.0 when wheel_ratio is 1.0."""
+    ratio = geometry.get("wheel_ratio", 1.0)
+    return 2.0 / (ratio + 1.0), 2.0 / (1.0 / ratio + 1.0)
+
+
+def wheel_mm_per_deg(geometry):
+    """(left, right) millimetres a wheel travels per motor degree: c * pi * D / 360 / distance_scale."""
+    c_l, c_r = wheel_factors(geometry)
+    mm = 1.0 / deg_per_mm(geometry)
+    return c_l * mm, c_r * mm
+
+
+def travel_mm(left_deg, right_deg, geometry):
+    """Travel of the axle midpoint for these motor degrees: the mean of the two wheels' travel,
+    each at its own millimetres per degree. Written as factor times degrees, summed, times the
+    average wheel's mm per degree, so equal wheels give exactly (left + right) / 2 * mm."""
+    c_l, c_r = wheel_factors(geometry)
+    return (left_deg * c_l + right_deg * c_r) * 0.5 * (1.0 / deg_per_mm(geometry))
+
+
 def spin_motor_deg(angle_deg, geometry):
-    """Motor degrees on each wheel for a spin turn about the axle midpoint."""
+    """Motor degrees on each wheel for a spin turn about the axle midpoint, equal wheels of the
+    average diameter (spin_wheel_deg gives each wheel its own)."""
     return angle_deg * geometry["track_mm"] / geometry["wheel_diameter_mm"] * geometry["spin_scale"]
 
 
+def spin_wheel_deg(angle_deg, geometry):
+    """(left, right) motor degrees for a spin turn: each wheel travels the same arc,
+    angle * track / 2, so the smaller wheel turns more degrees (angle * track / (c * D))."""
+    c_l, c_r = wheel_factors(geometry)
+    track = geometry["track_mm"]
+    scale = geometry["spin_scale"]
+    return (angle_deg * track / (c_l * geometry["wheel_diameter_mm"]) * scale,
+            angle_deg * track / (c_r * geometry["wheel_diameter_mm"]) * scale)
+
+
 def encoder_heading_deg(left_deg, right_deg, geometry):
-    """Heading change (clockwise) the wheel encoders imply: the inverse of spin_motor_deg, so a
-    spin turn of a degrees reads back as a."""
+    """Heading change (clockwise) the wheel encoders imply: each wheel's degrees times its
+    diameter factor, so a spin turn by spin_wheel_deg of a degrees reads back as a."""
+    c_l, c_r = wheel_factors(geometry)
     return (
-        (left_deg - right_deg) * geometry["wheel_diameter_mm"]
+        (left_deg * c_l - right_deg * c_r) * geometry["wheel_diameter_mm"]
         / (2.0 * geometry["track_mm"] * geometry["spin_scale"])
     )
 
 
 def pivot_motor_deg(angle_deg, geometry):
-    """Motor degrees on the moving wheel for a pivot turn about the other, stopped wheel."""
+    """Motor degrees on the moving wheel for a pivot turn about the other, stopped wheel, for a
+    wheel of the average diameter (pivot_wheel_deg gives each wheel its own)."""
     return (
         angle_deg * 2.0 * geometry["track_mm"] / geometry["wheel_diameter_mm"]
         * geometry["pivot_scale"]
     )
+
+
+def pivot_wheel_deg(angle_deg, geometry):
+    """(left, right) motor degrees each wheel turns when it is the moving one of a pivot turn
+    (pivot_right moves the left wheel, pivot_left the right): arc angle * track over c * D."""
+    c_l, c_r = wheel_factors(geometry)
+    arc = angle_deg * 2.0 * geometry["track_mm"]
+    scale = geometry["pivot_scale"]
+    return (arc / (c_l * geometry["wheel_diameter_mm"]) * scale,
+            arc / (c_r * geometry["wheel_diameter_mm"]) * scale)
 
 
 def ramp_speed_pct(travelled_mm, remaining_mm, p):

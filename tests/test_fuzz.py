@@ -599,6 +599,28 @@ def test_refused_hello_opens_no_session(hello: dict) -> None:
     assert [t for t, _s, _b in hub.replies()] == [wire.REFUSE, wire.REFUSE]
 
 
+@pytest.mark.parametrize(("ratio", "ok"), [(0.9, True), (1.0, True), (1.1, True), (1.037, True),
+                                           (0.8999, False), (1.1001, False), (0.5, False)])
+def test_wheel_ratio_limits_agree_between_oracle_and_hub(ratio: float, ok: bool) -> None:
+    """wheel_ratio (D_right / D_left) is taken within 0.9..1.1 by the oracle and by the hub alike."""
+    from fuzz_oracle import GEOMETRY_LIMITS as ORACLE_LIMITS, well_formed_hello
+    from hub_side.motion import GEOMETRY_LIMITS as HUB_LIMITS
+
+    assert ORACLE_LIMITS["wheel_ratio"] == (0.9, 1.1) and set(ORACLE_LIMITS) == set(HUB_LIMITS)
+    hello = {"proto": wire.PROTOCOL_VERSION, "session": "r", "watchdog_ms": 60000,
+             "geometry": {"wheel_ratio": ratio}}
+    assert well_formed_hello(hello) is ok
+    hub = Hub()
+    with watched_actions(hub.watch):
+        hub.deliver(wire.encode_message(wire.HELLO, 1, hello))
+        hub.deliver(wire.encode_message(wire.START, 2, GOOD_STARTS["turn"]))
+    assert [name for name, _p in hub.watch.started] == (["turn"] if ok else [])
+    refused = [b for t, _s, b in hub.replies() if t == wire.REFUSE]
+    assert (len(refused) == 0) is ok
+    if not ok:
+        assert "geometry.wheel_ratio" in json.dumps(refused[0])
+
+
 # ---------------------------------------------------------------- on the hub's own interpreter
 
 MICROPYTHON_FUZZ = """

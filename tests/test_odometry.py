@@ -218,12 +218,12 @@ from hub_side.listener import Listener
 # per degree of heading (track 2 D); its right motor is 35/36 as strong as the left.
 GEOMETRY = {"wheel_diameter_mm": 57.29578, "track_mm": 114.59156}
 
-def drive(params):
+def drive(params, geometry=GEOMETRY):
     board = ScriptedBoard()
     listener = Listener(board, robot_id="s", control_period_us=10000)
     reader = wire.FrameReader()
     board.host_send(wire.encode_message(wire.HELLO, 1, {"proto": wire.PROTOCOL_VERSION, "session": "h",
-                                                        "watchdog_ms": 20000, "geometry": GEOMETRY}))
+                                                        "watchdog_ms": 20000, "geometry": geometry}))
     board.host_send(wire.encode_message(wire.START, 2, {"action": "drive_straight", "telemetry_hz": 0,
                                                         "params": params}))
     for _ in range(200000):
@@ -240,6 +240,10 @@ def drive(params):
 drive({"distance_mm": 300, "speed_pct": 50, "hold": "encoders"})
 drive({"distance_mm": 300, "speed_pct": 50, "kp_heading": 0})
 drive({"distance_mm": 300, "speed_pct": 50, "hold": "gyro"})
+# Told the right wheel is 3 % larger (it is not): the hold turns the wheels 1.03 : 1 in degrees.
+geometry = dict(GEOMETRY)
+geometry["wheel_ratio"] = 1.03
+drive({"distance_mm": 300, "speed_pct": 50, "hold": "encoders"}, geometry)
 """
 
 
@@ -252,13 +256,15 @@ def test_encoder_hold_drives_straight_by_the_wheels_on_both_interpreters(tmp_pat
     mpy = run_micropython(HOLD_SCRIPT, [ROOT / "hub_side", ROOT / "tests" / "hub_script"])
     assert mpy.split() == cpython.stdout.split()  # the board model is all integer: same numbers
     rows = [line.split() for line in cpython.stdout.splitlines()]
-    (enc_status, el, er, _, x_enc, h_enc), (_, ol, orr, _, x_open, h_open), (gyro_status, *_rest) = rows
+    (enc_status, el, er, _, x_enc, h_enc), (_, ol, orr, _, x_open, h_open), (gyro_status, *_rest), ratio_row = rows
     assert enc_status == gyro_status == "done"
     # Held by the encoders the wheels turn alike and the robot keeps its heading; left alone the
     # weaker right motor makes it curve right (clockwise) by several degrees.
     assert abs(int(el) - int(er)) <= 4 and abs(int(h_enc)) <= 100  # centidegrees
     assert int(ol) - int(orr) >= 12 and int(h_open) > 300
     assert abs(int(x_enc)) < abs(int(x_open))
+    # With wheel_ratio 1.03 the hold keeps c_L * left = c_R * right: left / right = c_R / c_L = 1.03.
+    assert ratio_row[0] == "done" and int(ratio_row[1]) / int(ratio_row[2]) == pytest.approx(1.03, abs=0.01)
 
 
 def test_encoder_hold_ignores_a_drifting_gyro(tmp_path: Path) -> None:
@@ -328,12 +334,13 @@ def test_umbmark_recovers_the_true_wheels_and_track(tmp_path, e_d, track, runs, 
     assert cal.track_mm_new == pytest.approx(track, abs=tol_b * profile.track_mm)
     lo, hi = cal.intervals["e_b"]
     assert lo <= est.e_b <= hi
-    # With the corrected track the squares close better: the track error is gone (E_b ~ 1), what
-    # is left is the wheels' (E_d unchanged, as the profile cannot hold it).
+    assert cal.wheel_ratio_new == pytest.approx(e_d, abs=tol_d)  # the profile had 1.0
+    # With the corrected track and wheel ratio the squares close: both errors are gone (E_b and
+    # E_d ~ 1); what is left is noise and the first-order model's remainder.
     after = cal.verify_result
-    assert after is not None and after.e_max_syst < 0.75 * cal.result.e_max_syst
+    assert after is not None and after.e_max_syst < 0.25 * cal.result.e_max_syst
     assert after.combined.e_b == pytest.approx(1.0, abs=tol_b)
-    assert after.combined.e_d == pytest.approx(e_d, abs=tol_d)
+    assert after.combined.e_d == pytest.approx(1.0, abs=tol_d)
 
 
 def test_operator_measured_squares_give_the_same_answer(tmp_path) -> None:
@@ -405,3 +412,155 @@ def test_cli_refuses_to_write_the_bundled_profile_and_bad_sides(tmp_path) -> Non
     args = parser.parse_args(["odometry", "--side-mm", "-5"])
     with pytest.raises(InputError, match="--side-mm"):
         args.func(args)
+
+
+# ------------------------------------------------------------------ unequal wheels: wheel_ratio
+
+# Hand-computed for D = 56 mm, track 120 mm, E_d = wheel_ratio = 1.05. Each wheel's diameter is
+# c * D with c_L = 2 / (E_d + 1) = 0.975609756 and c_R = 2 / (1/E_d + 1) = 1.024390244 (Borenstein
+# & Feng 1996, REFERENCES.md section 2); so 1 / c_L = (E_d + 1) / 2 = 1.025 and
+# 1 / c_R = (1/E_d + 1) / 2 = 0.976190476. Equal 56 mm wheels need 90 * 120 / 56 = 192.857142857
+# motor degrees each for a 90 degree spin, and 385.714285714 for a 90 degree pivot (the module's
+# common-practice kinematics, checked in tests/test_cli_sim.py); each wheel takes that over its c.
+GEOMETRY_UNEQUAL = {"wheel_diameter_mm": 56.0, "track_mm": 120.0, "distance_scale": 1.0, "spin_scale": 1.0,
+                    "pivot_scale": 1.0, "wheel_ratio": 1.05}
+
+
+def test_wheel_helpers_against_hand_computed_values() -> None:
+    from hub_side import motion
+
+    g = GEOMETRY_UNEQUAL
+    assert motion.wheel_factors(g) == (pytest.approx(0.975609756, abs=1e-9), pytest.approx(1.024390244, abs=1e-9))
+    assert motion.spin_wheel_deg(90.0, g) == (pytest.approx(197.678571429, abs=1e-6),
+                                              pytest.approx(188.265306122, abs=1e-6))
+    assert motion.pivot_wheel_deg(90.0, g) == (pytest.approx(395.357142857, abs=1e-6),
+                                               pytest.approx(376.530612245, abs=1e-6))
+    # pi * 56 / 360 = 0.488692191 mm per degree for the average wheel; each wheel that times c.
+    assert motion.wheel_mm_per_deg(g) == (pytest.approx(0.476772869, abs=1e-9), pytest.approx(0.500611513, abs=1e-9))
+    # 100 degrees on each wheel: the mean of 47.6772869 and 50.0611513 mm (the average is kept).
+    assert motion.travel_mm(100, 100, g) == pytest.approx(48.8692191, abs=1e-6)
+    assert motion.travel_mm(100, 0, g) == pytest.approx(23.83864345, abs=1e-6)
+    # The encoder heading reads a per-wheel spin back as its angle, and equal degrees on both
+    # wheels (arcs 47.677 and 50.061 mm) as (47.6772869 - 50.0611513) / 120 rad = -1.1382 deg.
+    left, right = motion.spin_wheel_deg(90.0, g)
+    assert motion.encoder_heading_deg(left, -right, g) == pytest.approx(90.0, rel=1e-12)
+    assert motion.encoder_heading_deg(100, 100, g) == pytest.approx(math.degrees(-2.3838644 / 120.0), abs=1e-6)
+    # The host's odometry model uses the same per-wheel millimetres.
+    model = OdometryModel(math.pi * 56.0 / 360.0, 120.0, 1.05)
+    assert model.wheel_mm_per_deg == pytest.approx(motion.wheel_mm_per_deg(g), rel=1e-12)
+
+
+@pytest.mark.parametrize("scales", [(1.0, 1.0, 1.0), (1.02, 1.05, 0.97)])
+def test_wheel_ratio_one_changes_nothing_bit_for_bit(scales) -> None:
+    """With wheel_ratio 1.0 the per-wheel helpers give exactly the equal-wheel formulas'
+    numbers (the ones the hub used before wheel_ratio existed), written out here."""
+    from hub_side import motion
+
+    ds, ss, ps = scales
+    for d, b in ((56.0, 112.0), (43.2, 117.7), (88.0, 161.3)):
+        g = {"wheel_diameter_mm": d, "track_mm": b, "distance_scale": ds, "spin_scale": ss, "pivot_scale": ps,
+             "wheel_ratio": 1.0}
+        mm = 1.0 / (360.0 / (math.pi * d) * ds)
+        for angle in (90.0, -37.5, 721.0):
+            spin = angle * b / d * ss
+            pivot = angle * 2.0 * b / d * ps
+            assert motion.spin_wheel_deg(angle, g) == (spin, spin)
+            assert motion.pivot_wheel_deg(angle, g) == (pivot, pivot)
+        for left, right in ((0, 0), (123, 119), (-4567, 4571), (10001, -3)):
+            assert motion.travel_mm(left, right, g) == ((left + right) * 0.5 * mm)
+            assert motion.encoder_heading_deg(left, right, g) == (left - right) * d / (2.0 * b * ss)
+
+
+def test_new_ratio_composes_with_the_old() -> None:
+    from harness.calibrate.odometry import compose_wheel_ratio
+
+    # The squares ran with wheels believed at ratio 1.02 (c_L = 2/2.02, c_R = 2.04/2.02); true
+    # wheels 55.8 and 57.4 mm. UMBmark's E_d is the true ratio over the believed one.
+    c_l, c_r = diameter_corrections(1.02)
+    e_d = (57.4 / (c_r * 56.0)) / (55.8 / (c_l * 56.0))
+    assert e_d == pytest.approx(57.4 / 55.8 / 1.02, rel=1e-12)
+    assert compose_wheel_ratio(1.02, e_d) == pytest.approx(57.4 / 55.8, rel=1e-12)
+    assert compose_wheel_ratio(1.0, 1.004) == 1.004
+
+
+def test_umbmark_on_a_profile_with_a_wrong_ratio_composes_to_the_true_one(tmp_path) -> None:
+    """The squares run with wheel_ratio 1.012 in the profile on wheels whose true ratio is 1.006:
+    the measured E_d is about 1.006 / 1.012, and old x E_d gives back the true ratio (a larger
+    mismatch is recovered less closely: UMBmark is first order, REFERENCES.md section 2, pitfall 4)."""
+    from dataclasses import replace
+
+    left, right = _wheels(1.006)
+    profile = replace(load_profile(DEFAULT_PROFILE), wheel_ratio=1.012)
+    connector = RobotConnector(profile, "sim", course=_course(tmp_path, left, right, 112.0), seed=4)
+    cal = calibrate_odometry(connector, SquarePlan(600.0, 30.0, 25.0), 1)
+    assert cal.result.combined.e_d == pytest.approx(1.006 / 1.012, abs=0.0005)
+    assert cal.wheel_ratio_new == pytest.approx(1.006, abs=0.0005)
+
+
+def _end_poses(course: Path, profile) -> dict[str, tuple[float, float, float]]:
+    """(forward mm, left mm, heading change deg) from the truth after a 90 degree encoder spin
+    turn and a 500 mm encoder-held straight, each from the course's start."""
+    from harness.session import Session
+
+    sim = Simulation(load_course(course), profile, seed=4)
+    session = Session(SimLink(sim), session_id="ratio")
+    session.hello(geometry=profile.geometry())
+    out = {}
+    for action, params in (("turn", {"angle_deg": 90.0, "mode": "spin", "using": "encoders", "speed_pct": 25.0}),
+                           ("drive_straight", {"distance_mm": 500.0, "speed_pct": 30.0, "hold": "encoders"})):
+        sim.reset()
+        before = truth_snapshot(sim)
+        assert session.run(action, params).status == "done"
+        after = truth_snapshot(sim)
+        fwd, lft = in_start_frame(before["pose"], after["pose"])
+        out[action] = (fwd, lft, truth_report(before, after)["heading_change_deg"])
+    return out
+
+
+def test_cli_writes_track_and_wheel_ratio_and_unequal_wheels_stop_mattering(tmp_path, capsys) -> None:
+    from dataclasses import replace
+
+    left, right = _wheels(1.01)
+    course = _course(tmp_path, left, right, 115.0)
+    robot = tmp_path / "robot.toml"
+    robot.write_text((ROOT / "suites" / "practice_robot.toml").read_text())
+    parser = argparse.ArgumentParser()
+    add_parser(parser.add_subparsers())
+    report = tmp_path / "odometry.json"
+    args = parser.parse_args(["odometry", "--robot", str(robot), "--course", str(course), "--repeat", "1",
+                              "--json", str(report), "--write"])
+    assert args.func(args) == 0
+    first = json.loads(report.read_text())
+    assert "wheel_ratio = 1.0" in capsys.readouterr().out  # "Wrote ... wheel_ratio = 1.0098..."
+    original = load_profile(ROOT / "suites" / "practice_robot.toml")
+    written = load_profile(robot)
+    assert written.wheel_ratio == pytest.approx(1.01, abs=0.0005)
+    assert written.wheel_ratio == round(first["recommend"]["wheel_ratio"], 6)
+    assert written.track_mm == pytest.approx(115.0, abs=0.2)
+    text = robot.read_text()
+    assert re.search(r"# \d{4}-\d\d-\d\d: wheel_ratio added, 1\.0\d+: UMBmark.*old x E_d\)\nwheel_ratio = 1\.0", text)
+    assert re.search(r"# \d{4}-\d\d-\d\d: track_mm 112(\.0)? -> 115\.\d+: UMBmark", text)
+
+    # The squares again: with the track alone, and with the track and the wheel ratio.
+    plan = SquarePlan(600.0, 30.0, 25.0)
+    track_only = replace(original, track_mm=written.track_mm)
+    e_track = calibrate_odometry(RobotConnector(track_only, "sim", course=course, seed=4), plan, 1).result
+    e_both = calibrate_odometry(RobotConnector(written, "sim", course=course, seed=4), plan, 1).result
+    # Measured: E_max,syst 161.5 mm as bundled, 86.8 mm with track_mm alone, 4.1 mm with both.
+    assert first["umbmark"]["e_max_syst"] > 150.0
+    assert e_both.e_max_syst < 0.1 * e_track.e_max_syst
+    assert e_both.combined.e_d == pytest.approx(1.0, abs=0.0005)
+
+    # A 90 degree spin turn and a 500 mm straight by the encoders, against the truth.
+    before, after = _end_poses(course, track_only), _end_poses(course, written)
+    # The spin stays on its spot: measured 0.41 mm off with the track alone, 0.007 mm with both.
+    assert math.hypot(*after["turn"][:2]) < 0.2 * math.hypot(*before["turn"][:2])
+    # Its heading (about 1.3 deg past 90 from coasting, either way) is no worse.
+    assert abs(after["turn"][2] - 90.0) <= abs(before["turn"][2] - 90.0) + 0.05
+    # The straight no longer curves: measured 11.2 mm to the left and 2.52 deg clockwise with the
+    # track alone, 1.1 mm and 0.15 deg with both (what is left is the hold's whole-degree encoder
+    # steps); the end point is nearer (500, 0).
+    assert abs(after["drive_straight"][1]) < 0.2 * abs(before["drive_straight"][1])
+    assert abs(after["drive_straight"][2]) < 0.2 * abs(before["drive_straight"][2])
+    assert (math.hypot(after["drive_straight"][0] - 500.0, after["drive_straight"][1])
+            < math.hypot(before["drive_straight"][0] - 500.0, before["drive_straight"][1]))

@@ -8,10 +8,10 @@ operator's tape measure on a real robot. The differences, actual minus odometry,
 centres of gravity and from them the wheel-diameter ratio E_d and the track-width factor E_b
 (harness.analysis.umbmark).
 
-What the profile can take: track_mm (times E_b; spin and pivot turns then come out right). It has
-one wheel diameter, so E_d is reported with the per-wheel diameters it implies: straight moves
-held by the gyro and line following do not mind unequal wheels, encoder-only moves curve by
-beta per leg; the cure is in the hardware (matched tyres, wheels seated the same).
+What the profile takes: track_mm (times E_b; spin and pivot turns then come out right) and
+wheel_ratio (D_right / D_left around wheel_diameter_mm; times E_d), which the hub uses for each
+wheel's millimetres per degree: encoder-held straight moves then stop curving, and encoder turns
+and the travelled distance count each wheel at its own size.
 """
 
 from __future__ import annotations
@@ -24,7 +24,7 @@ from typing import Any
 
 import numpy as np
 
-from harness.analysis.umbmark import UmbmarkResult, integrate_odometry, umbmark
+from harness.analysis.umbmark import UmbmarkResult, diameter_corrections, integrate_odometry, umbmark
 from harness.calibrate.common import (
     OperatorStopped,
     add_robot_options,
@@ -38,6 +38,7 @@ from harness.profile import RobotProfile
 from harness.robot import RobotConnector
 from harness.session import RunRecord, Session
 from harness.sim import truth_snapshot
+from hub_side.motion import GEOMETRY_LIMITS
 
 Ask = Callable[[str], str]
 
@@ -70,18 +71,27 @@ class SquarePlan:
 class OdometryModel:
     """What the hub believes: millimetres per motor degree and the track its turns assume.
 
-    The hub's straight moves use wheel_diameter_mm / distance_scale; its spin turns use
-    track_mm * spin_scale / wheel_diameter_mm motor degrees per degree. Expressed as a track
-    between wheels of that effective diameter, the turns assume track * spin_scale / distance_scale.
+    The hub's straight moves use wheel_diameter_mm / distance_scale for the average wheel, and
+    each wheel that times its factor c_L or c_R from wheel_ratio (hub_side.motion.wheel_factors);
+    its spin turns use track_mm * spin_scale / (c * wheel_diameter_mm) motor degrees per degree on
+    each wheel. Expressed as a track between wheels of those effective diameters, the turns
+    assume track * spin_scale / distance_scale whatever the ratio.
     """
 
-    mm_per_deg: float
+    mm_per_deg: float  # the average wheel
     track_mm: float
+    wheel_ratio: float = 1.0  # D_right / D_left, as the hub's geometry
 
     @classmethod
     def of(cls, profile: RobotProfile) -> OdometryModel:
         return cls(math.pi * profile.wheel_diameter_mm / (360.0 * profile.distance_scale),
-                   profile.track_mm * profile.spin_scale / profile.distance_scale)
+                   profile.track_mm * profile.spin_scale / profile.distance_scale, profile.wheel_ratio)
+
+    @property
+    def wheel_mm_per_deg(self) -> tuple[float, float]:
+        """(left, right) millimetres per motor degree (c_L, c_R of Borenstein & Feng 1996)."""
+        c_l, c_r = diameter_corrections(self.wheel_ratio)
+        return c_l * self.mm_per_deg, c_r * self.mm_per_deg
 
 
 @dataclass(frozen=True)
@@ -112,6 +122,7 @@ def move_odometry(record: RunRecord, model: OdometryModel,
     """The pose after one move, integrated from its encoder telemetry; from the move's encoder
     totals (one step along the mid heading: exact for an arc) when samples are missing."""
     tel = record.telemetry
+    mm_left, mm_right = model.wheel_mm_per_deg
     total = (record.result.get("enc_left_deg"), record.result.get("enc_right_deg"))
     have_totals = all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in total)
     if len(tel) and not tel.dropped:
@@ -119,11 +130,11 @@ def move_odometry(record: RunRecord, model: OdometryModel,
         right = np.asarray(tel.enc_right_deg, dtype=float)
         if have_totals and (left[-1], right[-1]) != total:
             left, right = np.append(left, total[0]), np.append(right, total[1])
-        return integrate_odometry(left * model.mm_per_deg, right * model.mm_per_deg, model.track_mm, pose), False
+        return integrate_odometry(left * mm_left, right * mm_right, model.track_mm, pose), False
     if not have_totals:
         raise RunFailed(f"{record.action} reported neither complete telemetry nor encoder totals: "
                         "no odometry for this run")
-    return integrate_odometry(np.array([total[0] * model.mm_per_deg]), np.array([total[1] * model.mm_per_deg]),
+    return integrate_odometry(np.array([total[0] * mm_left]), np.array([total[1] * mm_right]),
                               model.track_mm, pose), True
 
 
@@ -163,6 +174,18 @@ def parse_position(text: str) -> tuple[float, float] | None:
     except ValueError:
         return None
     return values if all(math.isfinite(v) for v in values) else None
+
+
+def compose_wheel_ratio(old_ratio: float, e_d: float) -> float:
+    """The profile's new wheel_ratio from the one the squares ran with and the E_d they measured.
+
+    The hub's odometry already counts each wheel at its own size, c_L * D and c_R * D, with
+    c_R / c_L = old_ratio. UMBmark measures the true wheels against that model: E_d is
+    (D_R,true / (c_R D)) / (D_L,true / (c_L D)) = (D_R,true / D_L,true) / old_ratio. So the true
+    ratio, and the one to write, is old_ratio * E_d (equal to E_d when the profile had 1.0). The
+    average diameter stays the profile's, as UMBmark assumes (REFERENCES.md section 2, pitfall 5).
+    """
+    return old_ratio * e_d
 
 
 # ------------------------------------------------------------------ driving the squares
@@ -244,9 +267,13 @@ class OdometryCalibration:
     def track_mm_new(self) -> float:
         return self.profile.track_mm * self.result.combined.e_b
 
+    @property
+    def wheel_ratio_new(self) -> float:
+        return compose_wheel_ratio(self.profile.wheel_ratio, self.result.combined.e_d)
+
     def wheel_diameters_mm(self) -> tuple[float, float]:
-        """(left, right) diameters with E_d applied around the profile's (average) diameter."""
-        c_l, c_r = self.result.corrections
+        """(left, right) diameters with the new ratio around the profile's (average) diameter."""
+        c_l, c_r = diameter_corrections(self.wheel_ratio_new)
         return c_l * self.profile.wheel_diameter_mm, c_r * self.profile.wheel_diameter_mm
 
     def as_dict(self) -> dict[str, Any]:
@@ -256,6 +283,7 @@ class OdometryCalibration:
             "runs": [r.as_dict() for r in self.runs], "umbmark": self.result.as_dict(),
             "ci95": {k: list(v) for k, v in self.intervals.items()},
             "recommend": {"track_mm": self.track_mm_new, "track_mm_was": self.profile.track_mm,
+                          "wheel_ratio": self.wheel_ratio_new, "wheel_ratio_was": self.profile.wheel_ratio,
                           "wheel_left_diameter_mm": left, "wheel_right_diameter_mm": right},
         }
         if self.verify_result is not None and self.verify_runs is not None:
@@ -267,7 +295,7 @@ class OdometryCalibration:
 def calibrate_odometry(connector: RobotConnector, plan: SquarePlan, runs: int, *, verify: bool = False,
                        ask: Ask = input, seed: int = 0) -> OdometryCalibration:
     """The whole test: squares both ways, UMBmark, and with verify the squares again with the
-    corrected track (on the simulator the robot is the same one, re-placed)."""
+    corrected track and wheel ratio (on the simulator the robot is the same one, re-placed)."""
     profile = connector.profile
     test = SquareTest(connector, plan, ask)
     session = connector.connect()
@@ -284,7 +312,7 @@ def calibrate_odometry(connector: RobotConnector, plan: SquarePlan, runs: int, *
                                       bootstrap_interval(cw, ccw, plan.side_mm, test.model.track_mm, seed))
     if not verify:
         return calibration
-    corrected = replace(profile, track_mm=calibration.track_mm_new)
+    corrected = replace(profile, track_mm=calibration.track_mm_new, wheel_ratio=calibration.wheel_ratio_new)
     connector.profile = corrected
     check = SquareTest(connector, plan, ask)
     session = connector.connect()
@@ -322,20 +350,24 @@ def print_calibration(cal: OdometryCalibration) -> None:
     left, right = cal.wheel_diameters_mm()
     print(f"Recommended: track_mm {cal.profile.track_mm:g} -> {cal.track_mm_new:.2f} (times E_b; spin and pivot "
           "turns then come out right)")
-    print(f"  Wheels: E_d = D_right / D_left = {est.e_d:.5f}, i.e. left {left:.3f} mm and right {right:.3f} mm "
-          f"around the profile's {cal.profile.wheel_diameter_mm:g} mm.")
+    print(f"  wheel_ratio {cal.profile.wheel_ratio:g} -> {cal.wheel_ratio_new:.5f} (times E_d = {est.e_d:.5f}; "
+          f"D_right / D_left, i.e. left {left:.3f} mm and right {right:.3f} mm around the profile's "
+          f"{cal.profile.wheel_diameter_mm:g} mm)")
     if abs(est.e_d - 1.0) > 0.001:
         side = "right" if est.e_d > 1 else "left"
-        print(f"  The {side} wheel is effectively larger: encoder-only straight moves curve "
+        print(f"  The {side} wheel is effectively larger than the profile says: encoder-only straight moves curve "
               f"{abs(math.degrees(est.beta_rad)):.2f} deg to the {'left' if est.e_d > 1 else 'right'} per "
-              f"{cal.plan.side_mm:g} mm. The profile has one wheel diameter, so this cannot be written: match "
-              "the tyres, seat both wheels the same, or keep straight moves on the gyro (drive_straight "
-              "holds the gyro heading by default).")
+              f"{cal.plan.side_mm:g} mm until wheel_ratio is written.")
     else:
-        print("  The wheels match within 0.1 %: nothing to do about E_d.")
+        print("  The wheels match the profile's ratio within 0.1 %.")
+    lo, hi = GEOMETRY_LIMITS["wheel_ratio"]
+    if not lo <= cal.wheel_ratio_new <= hi:
+        print(f"  {cal.wheel_ratio_new:.5f} is outside the profile's {lo:g} to {hi:g}: check the tyres and how the "
+              "wheels are seated before trusting it.")
     if cal.verify_result is not None:
         after = cal.verify_result
-        print(f"Verified with track_mm {cal.track_mm_new:.2f}: E_max,syst {res.e_max_syst:.1f} -> "
+        print(f"Verified with track_mm {cal.track_mm_new:.2f} and wheel_ratio {cal.wheel_ratio_new:.5f}: "
+              f"E_max,syst {res.e_max_syst:.1f} -> "
               f"{after.e_max_syst:.1f} mm; E_b now {after.combined.e_b:.5f}, E_d {after.combined.e_d:.5f}")
 
 
@@ -357,10 +389,15 @@ def cmd_odometry(args: argparse.Namespace, ask: Ask = input) -> int:
         from harness.calibrate.writeback import write_profile_values
 
         est = cal.result.combined
-        write_profile_values(args.robot, {"track_mm": round(cal.track_mm_new, 2)},
+        lo, hi = GEOMETRY_LIMITS["wheel_ratio"]
+        if not lo <= cal.wheel_ratio_new <= hi:
+            raise InputError(f"the measured wheel ratio {cal.wheel_ratio_new:.5f} is outside {lo:g} to {hi:g}; "
+                             "nothing written (check the tyres and wheels, then run again)", key="wheel_ratio")
+        ratio = round(cal.wheel_ratio_new, 6)
+        write_profile_values(args.robot, {"track_mm": round(cal.track_mm_new, 2), "wheel_ratio": ratio},
                              f"UMBmark, {args.repeat} x {args.side_mm:g} mm squares each way: "
-                             f"E_b {est.e_b:.5f}, E_d {est.e_d:.5f} (wheels not in the profile)")
-        print(f"Wrote track_mm = {cal.track_mm_new:.2f} to {args.robot}")
+                             f"E_b {est.e_b:.5f}, E_d {est.e_d:.5f} (wheel_ratio = old x E_d)")
+        print(f"Wrote track_mm = {cal.track_mm_new:.2f} and wheel_ratio = {ratio:.6f} to {args.robot}")
     return 0
 
 
@@ -369,13 +406,14 @@ def add_parser(calibrate_sub: argparse._SubParsersAction) -> None:
         "odometry", help="UMBmark square test: wheel-diameter ratio and track width from return errors",
         description="Drive squares clockwise and counter-clockwise by the encoders alone and compare "
                     "where the robot really ends with where its odometry says it ends (UMBmark, "
-                    "Borenstein & Feng 1996). Recommends track_mm (written with --write) and reports the "
-                    "wheel-diameter ratio. On the simulator the end point comes from the truth; on a real "
+                    "Borenstein & Feng 1996). Recommends track_mm and wheel_ratio (both written with "
+                    "--write). On the simulator the end point comes from the truth; on a real "
                     "robot you measure it from a start mark after each square.")
     add_robot_options(p, repeat=5)
     p.add_argument("--side-mm", type=float, default=600.0, help="side of the square (default 600 mm)")
     p.add_argument("--speed-pct", type=float, default=30.0, help="speed on the legs (default 30)")
     p.add_argument("--turn-speed-pct", type=float, default=25.0, help="speed of the spin turns (default 25)")
     p.add_argument("--verify", action="store_true",
-                   help="drive the squares again with the corrected track and show E_max,syst after")
+                   help="drive the squares again with the corrected track and wheel ratio and show "
+                        "E_max,syst after")
     p.set_defaults(func=cmd_odometry)
