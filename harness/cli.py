@@ -18,7 +18,8 @@ from harness.errors import InputError, TrackproofError
 from harness.links import SimLink, parse_faults
 from harness.profile import load_profile
 from harness.report import print_report, write_json, write_junit
-from harness.runner import SAFETY_NOTE, OperatorQuit, Runner, judge_case, stored_outcomes
+from harness.operator import SAFETY_NOTE, OperatorStopped
+from harness.runner import Runner, judge_case, stored_outcomes
 from harness.session import Session
 from harness.sim import DEFAULT_COURSE, DEFAULT_PROFILE, SUITES_DIR, Simulation, truth_report, truth_snapshot
 from harness.sim.course import load_course
@@ -149,7 +150,7 @@ def cmd_run(args: argparse.Namespace) -> int:
             runner.on_progress = show
             try:
                 report = runner.run(resume=resume)
-            except OperatorQuit:
+            except OperatorStopped:
                 print("trackproof: not started; nothing moved", file=sys.stderr)
                 return 130
     print_report(report, console)

@@ -26,6 +26,7 @@ import pandas as pd
 from harness.analysis import Check, evaluate, iso9283_rp, orientation_rp, summarize, verdict
 from harness.errors import HubRefused, InputError, LinkError, ProtocolError
 from harness.links import Faults, Link, LinkSpec
+from harness.operator import Ask, OperatorStopped, ask_operator, confirm_real
 from harness.profile import RobotProfile
 from harness.robot import RobotConnector, open_real_link
 from harness.measure import Measurement, measure_run, metrics_by_name
@@ -35,18 +36,9 @@ from harness.store import Store
 from harness.suites import Case, Suite
 
 
-SAFETY_NOTE = ("Safety: a real robot moves on its own. Keep fingers and loose cables clear, run it "
-               "on the floor or a mat with edges, never leave lithium batteries charging or running "
-               "unattended, and follow your venue's and the manufacturer's rules.")
-
-
 def redact_secret(profile_text: str) -> str:
     """The profile as stored with each session: a shared secret does not belong in a database."""
     return re.sub(r'(?m)^(\s*secret\s*=\s*)(".*?"|\'.*?\')', r'\1"(not stored)"', profile_text)
-
-
-class OperatorQuit(Exception):
-    """The operator chose to quit at a prompt."""
 
 
 @dataclass
@@ -139,7 +131,7 @@ def _finite(x: float) -> float | None:
 
 class Runner:
     def __init__(self, suite: Suite, store: Store, *, link: str = "sim", faults: Faults | None = None,
-                 repeat: int | None = None, seed: int | None = None, ask: Callable[[str], str] = input,
+                 repeat: int | None = None, seed: int | None = None, ask: Ask = ask_operator,
                  confirm: bool = True,
                  on_progress: Callable[[str, int, int, int, int], None] | None = None,
                  open_link: Callable[[LinkSpec, RobotProfile], Link] = open_real_link) -> None:
@@ -178,10 +170,8 @@ class Runner:
                 raise InputError(f"case {case.name!r} resets with routine {case.reset[8:]!r}, which hub "
                                  f"{hub.robot_id} does not have (it has: {', '.join(hub.routines) or 'none'})",
                                  file=str(self.suite.path), key="reset")
-        if self.confirm and not hub.board.get("simulated"):
-            answer = self.ask(self.plan(hub.robot_id) + "\nType yes to start: ")
-            if answer.strip().lower() not in ("y", "yes"):
-                raise OperatorQuit()
+        if self.confirm:
+            confirm_real(session, self.plan(hub.robot_id), self.ask)
 
     def plan(self, robot_id: str) -> str:
         """What the robot is about to do, in words, for the operator's confirmation."""
@@ -190,9 +180,6 @@ class Runner:
             steps = "; then ".join(f"{s.name} " + " ".join(f"{k}={v}" for k, v in s.params.items())
                                    for s in case.steps)
             lines.append(f"  {case.name}: {self.repeats(case)} x {steps} (reset: {case.reset})")
-        lines.append("The robot will move by itself. Stop it at any time with Ctrl-C"
-                     " (or the hub's stop button, if it has one).")
-        lines.append(SAFETY_NOTE)
         return "\n".join(lines)
 
     def repeats(self, case: Case) -> int:
@@ -242,7 +229,7 @@ class Runner:
                         counts[outcome.status] += 1
                     if self.on_progress:
                         self.on_progress(case.name, rep, index, total, counts["fail"])
-        except (KeyboardInterrupt, OperatorQuit):
+        except (KeyboardInterrupt, OperatorStopped):
             status = "aborted"
         except (LinkError, ProtocolError) as exc:
             status, note = "link_lost", str(exc)
@@ -268,7 +255,7 @@ class Runner:
         elif case.reset == "operator":
             answer = self.ask(f"[{case.name} run {rep}] put the robot at the start; Enter to go, s to skip, q to quit: ")
             if answer.strip().lower() == "q":
-                raise OperatorQuit()
+                raise OperatorStopped("stopped at a reset prompt")
             if answer.strip().lower() == "s":
                 raise _Skip()
         else:

@@ -675,7 +675,7 @@ def cmd_tune(args: argparse.Namespace, ask: Ask = input) -> int:
     report = tune(connector, settings, ask)
     print_report(report)
     if args.json:
-        from harness.calibrate.common import write_json
+        from harness.jsonout import write_json
 
         write_json(args.json, report.as_dict())
     if args.write:

@@ -500,7 +500,7 @@ def test_real_robot_operator_can_refuse_to_start(monkeypatch, robot_file: Path) 
     sim.board.capabilities = {"gyro": True, "battery": True}
     before = sim.robot.travel_mm
     from harness.calibrate import turns
-    from harness.calibrate.common import OperatorStopped
+    from harness.operator import OperatorStopped
 
     args = argparse.Namespace(robot=robot_file, course=None, link="serial:/dev/fake-hub", seed=0, repeat=1,
                               write=True, json=None, angles=[90.0, 180.0], modes=["spin"], speed_pct=40.0)

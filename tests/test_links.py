@@ -16,7 +16,8 @@ from hypothesis import strategies as st
 from harness.errors import InputError, LinkError, ProtocolError
 from harness.links import FaultyLink, SimLink, parse_faults, parse_link
 from harness.links.serial_port import PortInfo, SerialLink, pick_port
-from harness.runner import OperatorQuit, Runner
+from harness.operator import OperatorStopped
+from harness.runner import Runner
 from harness.session import Session
 from harness.sim import SUITES_DIR, Simulation
 from harness.sim.realtime import add_sim_routines
@@ -475,7 +476,7 @@ def test_real_hardware_waits_for_the_operators_yes(tmp_path):
                       open_link=lambda spec, s: SimLink(sim))
 
     with Store(tmp_path / "r.sqlite") as store:
-        with pytest.raises(OperatorQuit):
+        with pytest.raises(OperatorStopped):
             runner("no", store).run()
         assert sim.robot.travel_mm == 0 and store.sessions().empty
         assert "turn angle_deg=90" in asked[0] and "Safety" in asked[0]

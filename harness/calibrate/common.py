@@ -3,28 +3,18 @@
 from __future__ import annotations
 
 import argparse
-import json
 import math
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from harness.errors import InputError, TrackproofError
+from harness.errors import InputError
 from harness.profile import RobotProfile, load_profile
 from harness.links import Link, LinkSpec
 from harness.robot import RobotConnector, open_real_link
-from harness.session import RunRecord, Session
 from harness.sim import DEFAULT_COURSE, DEFAULT_PROFILE
 from hub_side.actions import BUILTINS
 from hub_side.motion import ParamError, check_params
-
-Ask = Callable[[str], str]
-
-
-class OperatorStopped(TrackproofError):
-    """The operator chose to quit at a prompt; nothing is written."""
-
-    exit_code = 130
 
 
 def number_list(low: float, high: float) -> Callable[[str], list[float]]:
@@ -93,44 +83,6 @@ def check_action(action: str, params: dict[str, Any], profile: RobotProfile) -> 
     except ParamError as exc:
         raise InputError(exc.text, key=f"{action}.{exc.key}") from None
     return params
-
-
-def confirm_real(session: Session, plan: str, ask: Ask) -> None:
-    """On real hardware, say what the robot is about to do and wait for a yes."""
-    from harness.runner import SAFETY_NOTE
-
-    hub = session.hub
-    if hub is None or hub.board.get("simulated"):
-        return
-    answer = ask(f"{plan}\nThe robot will move by itself. Stop it at any time with Ctrl-C.\n{SAFETY_NOTE}\n"
-                 "Type yes to start: ")
-    if answer.strip().lower() not in ("y", "yes"):
-        raise OperatorStopped("not started; nothing moved")
-
-
-def run_checked(session: Session, action: str, params: dict[str, Any]) -> RunRecord:
-    return session.run(action, params, telemetry_hz=0)
-
-
-def write_json(path: Path, data: dict[str, Any]) -> None:
-    try:
-        path.write_text(json.dumps(_clean(data), indent=2, allow_nan=False) + "\n", encoding="utf-8")
-    except OSError as exc:
-        raise InputError(f"cannot write: {exc}", file=str(path)) from None
-
-
-def _clean(value: Any) -> Any:
-    """Plain JSON values: numpy numbers and arrays as lists and floats, NaN and infinity as null
-    (JSON has neither)."""
-    if hasattr(value, "tolist"):
-        value = value.tolist()
-    if isinstance(value, dict):
-        return {str(k): _clean(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_clean(v) for v in value]
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
 
 
 def fmt_ci(ci: tuple[float, float] | None, digits: int) -> str:

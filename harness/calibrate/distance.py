@@ -35,8 +35,9 @@ from typing import Any
 import numpy as np
 
 from harness.analysis import Summary, summarize
-from harness.calibrate.common import (Ask, OperatorStopped, add_robot_options, check_action, confirm_real, fmt_ci,
-                                      load_robot, number_list, write_json)
+from harness.calibrate.common import add_robot_options, check_action, fmt_ci, load_robot, number_list
+from harness.jsonout import write_json
+from harness.operator import Ask, OperatorStopped, ask_operator, confirm_real
 from harness.calibrate.fit import LineFit, fit_line, fit_through_origin
 from harness.calibrate.writeback import format_value, write_profile_values
 from harness.errors import InputError, TrackproofError
@@ -339,7 +340,7 @@ def add_parser(calibrate_sub: argparse._SubParsersAction) -> None:
     p.set_defaults(func=cmd_distance)
 
 
-def cmd_distance(args: argparse.Namespace, ask: Ask = input,
+def cmd_distance(args: argparse.Namespace, ask: Ask = ask_operator,
                  open_link: Callable[[LinkSpec, RobotProfile], Link] = open_real_link) -> int:
     measure = args.measure or ("truth" if args.link.startswith("sim") else "ruler")
     if measure == "truth" and not args.link.startswith("sim"):

@@ -18,29 +18,21 @@ from __future__ import annotations
 
 import argparse
 import math
-from collections.abc import Callable
 from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
 
 from harness.analysis.umbmark import UmbmarkResult, diameter_corrections, integrate_odometry, umbmark
-from harness.calibrate.common import (
-    OperatorStopped,
-    add_robot_options,
-    check_action,
-    confirm_real,
-    load_robot,
-    write_json,
-)
+from harness.calibrate.common import add_robot_options, check_action, load_robot
+from harness.jsonout import write_json
+from harness.operator import Ask, OperatorStopped, ask_operator, confirm_real
 from harness.errors import InputError, TrackproofError
 from harness.profile import RobotProfile
 from harness.robot import RobotConnector
 from harness.session import RunRecord, Session
 from harness.sim import truth_snapshot
 from hub_side.motion import GEOMETRY_LIMITS
-
-Ask = Callable[[str], str]
 
 DIRECTIONS = ("cw", "ccw")
 TELEMETRY_HZ = 100  # one sample per control period: the odometry integrates these
@@ -194,7 +186,7 @@ def compose_wheel_ratio(old_ratio: float, e_d: float) -> float:
 class SquareTest:
     """Runs the squares on one robot and collects the return errors."""
 
-    def __init__(self, connector: RobotConnector, plan: SquarePlan, ask: Ask = input) -> None:
+    def __init__(self, connector: RobotConnector, plan: SquarePlan, ask: Ask = ask_operator) -> None:
         self.connector = connector
         self.plan = plan
         self.ask = ask
@@ -293,7 +285,7 @@ class OdometryCalibration:
 
 
 def calibrate_odometry(connector: RobotConnector, plan: SquarePlan, runs: int, *, verify: bool = False,
-                       ask: Ask = input, seed: int = 0) -> OdometryCalibration:
+                       ask: Ask = ask_operator, seed: int = 0) -> OdometryCalibration:
     """The whole test: squares both ways, UMBmark, and with verify the squares again with the
     corrected track and wheel ratio (on the simulator the robot is the same one, re-placed)."""
     profile = connector.profile
@@ -371,7 +363,7 @@ def print_calibration(cal: OdometryCalibration) -> None:
               f"{after.e_max_syst:.1f} mm; E_b now {after.combined.e_b:.5f}, E_d {after.combined.e_d:.5f}")
 
 
-def cmd_odometry(args: argparse.Namespace, ask: Ask = input) -> int:
+def cmd_odometry(args: argparse.Namespace, ask: Ask = ask_operator) -> int:
     if args.side_mm <= 0 or args.side_mm > 5000:
         raise InputError(f"must be in (0, 5000] mm, got {args.side_mm:g}", key="--side-mm")
     for key, value in (("--speed-pct", args.speed_pct), ("--turn-speed-pct", args.turn_speed_pct)):

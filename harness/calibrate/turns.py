@@ -29,8 +29,9 @@ from typing import Any
 
 import numpy as np
 
-from harness.calibrate.common import (Ask, add_robot_options, check_action, confirm_real, fmt_ci, load_robot,
-                                      number_list, write_json)
+from harness.calibrate.common import add_robot_options, check_action, fmt_ci, load_robot, number_list
+from harness.jsonout import write_json
+from harness.operator import Ask, ask_operator, confirm_real
 from harness.calibrate.fit import LineFit, fit_with_offset_if_needed
 from harness.calibrate.writeback import format_value, write_profile_values
 from harness.errors import InputError, TrackproofError
@@ -294,7 +295,7 @@ def add_parser(calibrate_sub: argparse._SubParsersAction) -> None:
     p.set_defaults(func=cmd_turns)
 
 
-def cmd_turns(args: argparse.Namespace, ask: Ask = input,
+def cmd_turns(args: argparse.Namespace, ask: Ask = ask_operator,
               open_link: Callable[[LinkSpec, RobotProfile], Link] = open_real_link) -> int:
     angles = sorted(set(args.angles))
     if len(angles) < 2:
