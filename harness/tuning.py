@@ -594,7 +594,7 @@ def tune(connector: RobotConnector, settings: TuneSettings, ask: Ask = input,
 
 
 def _confirm(session: Session, connector: RobotConnector, settings: TuneSettings, ask: Ask) -> None:
-    from harness.runner import SAFETY_NOTE
+    from harness.operator import SAFETY_NOTE
 
     hub = session.hub
     if hub is None or hub.board.get("simulated"):
