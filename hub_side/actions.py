@@ -259,7 +259,12 @@ def turn(ctx, p):
         speed = p["speed_pct"]
         if slow > 0 and remaining < slow:
             speed = max(p["min_pct"], speed * remaining / slow)
-        ctx.set_power(clamp(power_left * speed, -100, 100), clamp(power_right * speed, -100, 100))
+        left_pct, right_pct = power_left * speed, power_right * speed
+        # Near full speed, scale both down rather than clamp one: they must keep their ratio.
+        over = max(abs(left_pct), abs(right_pct)) / 100.0
+        if over > 1.0:
+            left_pct, right_pct = left_pct / over, right_pct / over
+        ctx.set_power(left_pct, right_pct)
         yield
     yield from settle(ctx)
     return {"target_deg": round(target, 2)}

@@ -286,10 +286,12 @@ def test_distance_on_worn_wheels_and_the_robot_then_lands_better(worn_course: Pa
     assert np.mean(np.abs(band_land)) < 1.0
 
 
-def test_distance_by_probing_a_line_ahead() -> None:
+def test_distance_by_probing_a_line_ahead(worn_course: Path) -> None:
     # outer_left sits 70 mm ahead and 40 mm left of the axle: at the start (x = 350) it is at
     # x = 420, and north_spur_a's near edge is at 700 - 19 / 2 = 690.5, so 270.5 mm ahead.
-    connector = _connector(seed=3)
+    # On worn wheels (true factor 0.979, 2 % from the profile's 1.0) so that returning the
+    # profile's value unchanged would fail.
+    connector = _connector(worn_course, seed=3)
     session = connector.connect()
     plan = [(s, d) for s in (20.0, 40.0) for d in (100.0, 150.0, 200.0) for _ in range(2)]
     runs = collect_drives(connector, session, plan, action="follow_line", measure="probe", ask=input,
@@ -297,10 +299,33 @@ def test_distance_by_probing_a_line_ahead() -> None:
     session.close()
     assert all(r.usable and r.edge_mm is not None for r in runs)
     cal = analyse_distance(runs, wheel_diameter_mm=56.0, profile_scale=1.0, line_mm=270.5)
-    # Placement error (1.5 mm sd on the course) makes each reference a little off: 0.5 %.
-    assert cal.factor == pytest.approx(true_scales(PRACTICE_TRUTH)["distance_scale"], abs=5e-3)
+    want = true_scales(load_course(worn_course).truth)["distance_scale"]
+    # Every run ends at the same line, so the fit rests on one reference: the sensor sees the
+    # edge a millimetre or two early (its footprint crosses the threshold first), a systematic
+    # 0.6 % here. Probing is the rough method, and the help says so.
+    assert cal.factor == pytest.approx(want, abs=8e-3) and abs(cal.factor - 1.0) > 0.01
     with pytest.raises(InputError, match="--line-mm"):
         analyse_distance(runs, wheel_diameter_mm=56.0, profile_scale=1.0)
+
+
+def test_outputs_are_checked_before_the_robot_moves(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from harness.cli import main
+
+    assert main(["calibrate", "turns", "--json", str(tmp_path / "no-such-folder" / "x.json")]) == 2
+    assert "does not exist" in capsys.readouterr().err
+    assert main(["calibrate", "turns", "--robot", str(tmp_path / "missing.toml"), "--write"]) == 2
+
+
+def test_a_closed_input_at_a_prompt_is_a_clean_stop(monkeypatch: pytest.MonkeyPatch,
+                                                     capsys: pytest.CaptureFixture[str]) -> None:
+    import io
+
+    from harness.cli import main
+
+    monkeypatch.setattr("sys.stdin", io.StringIO(""))
+    assert main(["calibrate", "distance", "--measure", "ruler", "--repeat", "1"]) == 130
+    err = capsys.readouterr().err
+    assert "no one answered the prompt" in err and "Traceback" not in err
 
 
 def test_distance_too_few_usable_runs_is_an_error() -> None:

@@ -564,3 +564,26 @@ def test_cli_writes_track_and_wheel_ratio_and_unequal_wheels_stop_mattering(tmp_
     assert abs(after["drive_straight"][2]) < 0.2 * abs(before["drive_straight"][2])
     assert (math.hypot(after["drive_straight"][0] - 500.0, after["drive_straight"][1])
             < math.hypot(before["drive_straight"][0] - 500.0, before["drive_straight"][1]))
+
+
+def test_a_full_speed_turn_keeps_the_wheels_in_ratio() -> None:
+    # With unequal wheels each wheel gets power in proportion to its target; at full speed the
+    # faster one must not be clamped alone (the wheels would no longer finish together).
+    from harness.links import SimLink
+    from harness.session import Session
+    from harness.sim import Simulation
+
+    sim = Simulation.from_files(seed=1)
+    powers: list[tuple[float, float]] = []
+    set_power = sim.board.set_power
+    sim.board.set_power = lambda left, right: (powers.append((left, right)), set_power(left, right))[1]
+    session = Session(SimLink(sim))
+    geometry = dict(sim.profile.geometry(), wheel_ratio=1.08)
+    session.hello(geometry=geometry)
+    record = session.run("turn", {"angle_deg": 90, "mode": "spin", "speed_pct": 100, "slow_deg": 0})
+    assert record.status == "done"
+    moving = [(lft, rgt) for lft, rgt in powers if lft and rgt]
+    assert moving and max(max(abs(lft), abs(rgt)) for lft, rgt in moving) <= 100.0
+    ratios = {round(abs(lft / rgt), 6) for lft, rgt in moving}
+    # Left turns 2/(E_d+1), right 2/(1/E_d+1) of the mean: the left wheel (smaller) needs more degrees.
+    assert ratios == {round(1.08, 6)}

@@ -8,7 +8,9 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from harness.calibrate.writeback import check_profile_writable
 from harness.errors import InputError
+from harness.jsonout import check_writable
 from harness.profile import RobotProfile, load_profile
 from harness.links import Link, LinkSpec
 from harness.robot import RobotConnector, open_real_link
@@ -70,6 +72,11 @@ def load_robot(args: argparse.Namespace,
         raise InputError("needs --robot PATH: the profile to update (the bundled example is "
                          "never written)", key="--write")
     profile = load_profile(args.robot or DEFAULT_PROFILE)
+    # Refuse now what would fail after the robot has driven: the outputs must be writable.
+    if args.write:
+        check_profile_writable(Path(args.robot).resolve())
+    if args.json:
+        check_writable(args.json)
     course = args.course
     if course is None and args.link == "sim":
         course = DEFAULT_COURSE

@@ -337,8 +337,10 @@ def print_calibration(cal: OdometryCalibration) -> None:
         print(f"  {label:9}: alpha {math.degrees(e.alpha_rad):+7.3f} deg/turn, beta {math.degrees(e.beta_rad):+7.3f} "
               f"deg/leg, E_d {e.e_d:.5f}, E_b {e.e_b:.5f}")
     ci = cal.intervals
-    print(f"  95 % bootstrap interval: E_d [{ci['e_d'][0]:.5f}, {ci['e_d'][1]:.5f}], "
-          f"E_b [{ci['e_b'][0]:.5f}, {ci['e_b'][1]:.5f}]")
+    if min(sum(r.direction == d for r in cal.runs) for d in DIRECTIONS) >= 3:
+        print(f"  run-to-run spread only (95 % bootstrap; not UMBmark's first-order model error, which is "
+              f"larger): E_d [{ci['e_d'][0]:.5f}, {ci['e_d'][1]:.5f}], E_b [{ci['e_b'][0]:.5f}, {ci['e_b'][1]:.5f}]")
+    print("  UMBmark is a first-order method: after writing, run it again (--verify) to see what is left.")
     left, right = cal.wheel_diameters_mm()
     print(f"Recommended: track_mm {cal.profile.track_mm:g} -> {cal.track_mm_new:.2f} (times E_b; spin and pivot "
           "turns then come out right)")

@@ -104,12 +104,22 @@ def _last_value(container: Any) -> Item | None:
     return last
 
 
+def check_profile_writable(path: Path) -> None:
+    """InputError unless the profile may be changed: a read-only file is the user's choice to
+    keep (replacing it through its folder would silently override that)."""
+    if not path.is_file():
+        raise InputError("file not found", file=str(path))
+    if not os.access(path, os.W_OK):
+        raise InputError("is read-only; not changed (make it writable to let --write update it)", file=str(path))
+
+
 def write_profile_values(path: str | Path, values: dict[str, float], note: str, *, table: tuple[str, ...] = (),
                          today: dt.date | None = None) -> str:
     """Set numbers of the profile at path in place (top-level, e.g. spin_scale, or inside
     `table`), with a dated note per change; returns the new text. The file is replaced
     atomically and only if the result is a valid profile."""
-    path = Path(path)
+    path = Path(path).resolve()  # a linked profile is updated where it lives, the link kept
+    check_profile_writable(path)
     new_text = updated_profile_text(_read(path), values, note, table=table, file=str(path), today=today)
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
