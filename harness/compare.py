@@ -6,15 +6,16 @@ spread with the Brown-Forsythe test, with effect sizes in the metric's unit and 
 same, better, worse, changed (moved, with no better direction), or not enough runs to tell (and
 how many more would settle it). The p-values that decide are Holm-adjusted over the comparison's
 deciding tests (and, separately, over the information-only ones), so two identical robots rarely
-look different by chance. The rules are in harness/analysis/compare.py.
+look different by chance; the runs needed to say "same" are planned for that correction, at
+alpha/m for a family of m tests. The rules are in harness/analysis/compare.py.
 
-Exit codes: 0 no case is worse, 1 a case is worse, 2 bad input (unknown session, bad --alpha).
+Exit codes: 0 no case is worse, 1 a case is worse, 2 bad input (unknown session, bad --alpha, a
+--json path whose folder does not exist: checked before comparing, so exit 1 is never hidden).
 """
 
 from __future__ import annotations
 
 import argparse
-import json
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -40,6 +41,7 @@ from harness.analysis.compare import (
 )
 from harness.analysis.verdicts import unit_of
 from harness.errors import InputError
+from harness.jsonout import check_writable, json_safe, write_json
 from harness.runner import stored_outcomes
 from harness.store import DEFAULT_DB, Store, StoreError
 from harness.suites import stored_cases
@@ -82,6 +84,7 @@ class Comparison:
     only_baseline: list[str]
     only_current: list[str]
     units: dict[str, str]
+    family_sizes: dict[str, int] = field(default_factory=dict)  # "deciding"/"information" -> tests in it
 
     @property
     def verdict(self) -> str:
@@ -176,6 +179,8 @@ def compare_sessions(base: SessionSide, cur: SessionSide, alpha: float = 0.05) -
         for t in tests:
             families[t.name in deciding].append((k, t))
     judged: list[list[MetricComparison]] = [[] for _ in both]
+    sizes = {("deciding" if deciding else "information"): sum(p is not None for _, t in members for p in t.pvalues)
+             for deciding, members in families.items()}
     for members in families.values():
         for (k, _), m in zip(members, judge_family([t for _, t in members], alpha)):
             judged[k].append(m)
@@ -193,23 +198,10 @@ def compare_sessions(base: SessionSide, cur: SessionSide, alpha: float = 0.05) -
         cases.append(CaseComparison(name, judge_by, verdict, more, runs, metrics, deciding))
     only_base = [name for name in base.cases if name not in cur.cases]
     only_cur = [name for name in cur.cases if name not in base.cases]
-    return Comparison(base, cur, alpha, cases, only_base, only_cur, {**base.units, **cur.units})
+    return Comparison(base, cur, alpha, cases, only_base, only_cur, {**base.units, **cur.units}, sizes)
 
 
 # ---------------------------------------------------------------- output
-
-
-def _clean(value: Any) -> Any:
-    """JSON-safe: NaN and infinities become None, tuples lists, numpy scalars plain numbers."""
-    if isinstance(value, dict):
-        return {k: _clean(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_clean(v) for v in value]
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
 
 
 def _more_dict(more: tuple[int, int] | None) -> dict[str, int] | None:
@@ -218,7 +210,7 @@ def _more_dict(more: tuple[int, int] | None) -> dict[str, int] | None:
 
 def _part_dict(part: PartComparison) -> dict[str, Any]:
     return {"verdict": part.verdict, "p": part.p, "p_holm": part.p_adjusted, "runs_needed": part.runs_needed,
-            "more_runs": _more_dict(part.more_runs), "why": part.why}
+            "runs_needed_alpha": part.power_alpha, "more_runs": _more_dict(part.more_runs), "why": part.why}
 
 
 def _metric_dict(m: MetricComparison, unit: str, decides: bool) -> dict[str, Any]:
@@ -247,12 +239,14 @@ def comparison_dict(comp: Comparison) -> dict[str, Any]:
         return {"session": s.uid, "suite": i["suite_name"], "robot": i["robot_id"], "link": i["link"],
                 "seed": i["seed"], "started_at": i["started_at"], "status": i["status"]}
 
-    return _clean({
+    return json_safe({
         "baseline": side(comp.baseline),
         "current": side(comp.current),
         "alpha": comp.alpha,
         "power": POWER,
         "correction": "holm",
+        "family_sizes": comp.family_sizes,
+        "runs_needed_at": "alpha / family size (Bonferroni, an upper bound on the runs Holm needs)",
         "same_needs": {"mean_shift_sd": SAME_MEAN_SD, "sd_ratio": SAME_SD_RATIO},
         "verdict": comp.verdict,
         "any_worse": comp.any_worse,
@@ -269,10 +263,7 @@ def comparison_dict(comp: Comparison) -> dict[str, Any]:
 
 
 def write_comparison_json(comp: Comparison, path: Path) -> None:
-    try:
-        path.write_text(json.dumps(comparison_dict(comp), indent=2, allow_nan=False) + "\n", encoding="utf-8")
-    except OSError as exc:
-        raise InputError(f"cannot write the comparison: {exc.strerror}", file=str(path)) from None
+    write_json(path, comparison_dict(comp))
 
 
 def _num(x: float | None) -> str:
@@ -346,6 +337,14 @@ def _case_table(case: CaseComparison, units: dict[str, str], title: str, wide: b
     return table
 
 
+def _planned_text(comp: Comparison) -> str:
+    """At which alpha the runs needed were planned: alpha/m per family (Bonferroni, as the
+    Holm-adjusted decision needs at most that many runs)."""
+    parts = [f"alpha/{m} = {comp.alpha / m:.3g} for the {m} {name} tests"
+             for name, m in comp.family_sizes.items() if m]
+    return ("at " + " and ".join(parts) + " (Bonferroni, a safe bound for Holm)") if parts else f"at alpha {comp.alpha:g}"
+
+
 def print_comparison(comp: Comparison, console: Console) -> None:
     b, c = comp.baseline, comp.current
     console.print(f"baseline {b.uid}: suite {b.info['suite_name']}, robot {b.info['robot_id']}, "
@@ -354,8 +353,8 @@ def print_comparison(comp: Comparison, console: Console) -> None:
                   f"link {c.info['link']}, seed {c.info['seed']}, started {c.info['started_at']}")
     console.print(f"means by Welch's t-test, spreads by Brown-Forsythe, alpha {comp.alpha:g}; * p-values after "
                   "Holm's correction for the many tests; \"same\" needs enough runs to see a "
-                  f"{SAME_MEAN_SD:g}-sd shift or a {SAME_SD_RATIO:g}x spread with {POWER:.0%} power; "
-                  "dimmed metrics are information, not part of the case verdict\n")
+                  f"{SAME_MEAN_SD:g}-sd shift or a {SAME_SD_RATIO:g}x spread with {POWER:.0%} power "
+                  f"{_planned_text(comp)}; dimmed metrics are information, not part of the case verdict\n")
     for case in comp.cases:
         style = _STYLE[case.verdict]
         head = case.verdict.upper()
@@ -387,6 +386,8 @@ def cmd_compare(args: argparse.Namespace) -> int:
     alpha = args.alpha
     if not (isinstance(alpha, float) and 0.0 < alpha < 0.5):
         raise InputError(f"expected a significance level between 0 and 0.5, got {alpha!r}", key="--alpha")
+    if args.json:
+        check_writable(args.json)  # before any work: a bad path after the report would hide exit 1 for "worse"
     try:
         with Store(args.db, readonly=True) as store:
             base_uid, cur_uid = pick_sessions(store, args.baseline, args.current, args.latest)

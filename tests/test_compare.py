@@ -25,6 +25,7 @@ from harness.analysis.compare import (
     holm_adjust,
     is_error_like,
     judge_family,
+    judge_metric,
     mean_difference_ci,
     mean_goal,
     metric_tests,
@@ -280,13 +281,65 @@ def test_a_family_of_unchanged_metrics_raises_no_false_alarm():
     assert judged[-1].mean_part.p_adjusted == pytest.approx(26 * judged[-1].mean_part.p)
 
 
+def test_same_in_a_family_needs_the_runs_the_corrected_test_needs():
+    """A 1-sd shift needs 17 runs per side at alpha 0.05 but 34 at 0.05/26: in a family of 26
+    tests, 20 unchanged runs per side may not be called "same" (it was, before the runs were
+    planned at the level the Holm-adjusted decision really works at)."""
+    assert runs_needed(1.0, 1.0, 1.0) == 17 and runs_needed(1.0, 1.0, 1.0, 0.05 / 26) == 34
+    rng = np.random.default_rng(8)
+    base = rng.normal(80.0, 1.0, 20)
+    unchanged = metric_tests("stop_error_mm", base, base.copy())  # p = 1 for both tests
+    sd_a, sd_b = unchanged.sd
+    margin = math.sqrt((sd_a ** 2 + sd_b ** 2) / 2.0)
+    # Alone, 20 runs are enough for a 1-sd shift.
+    alone = judge_metric(unchanged)
+    assert alone.mean_part.verdict == "same" and alone.mean_part.runs_needed == runs_needed(margin, sd_a, sd_b)
+    # With 12 noise metrics more the family has 26 tests: the runs are planned at alpha/26.
+    family = [metric_tests(f"m{k}_error_mm", rng.normal(0, 1, 20), rng.normal(0, 1, 20)) for k in range(12)]
+    judged = judge_family([*family, unchanged])[-1]
+    mean = judged.mean_part
+    assert mean.verdict == "not enough runs" and judged.verdict == "not enough runs"
+    assert mean.runs_needed == runs_needed(margin, sd_a, sd_b, 0.05 / 26) > 30
+    assert mean.more_runs == (mean.runs_needed - 20, mean.runs_needed - 20)
+    assert mean.power_alpha == pytest.approx(0.05 / 26) and "alpha/26" in mean.why
+    assert judged.spread_part.power_alpha == pytest.approx(0.05 / 26)
+    assert judge_metric(unchanged, family_size=26).mean_part == mean  # what judge_family passes on
+    # Enough runs for the family: "same" again, and the text says at which level.
+    many = rng.normal(80.0, 1.0, 60)
+    big = judge_family([*family, metric_tests("stop_error_mm", many, many.copy())])[-1]
+    assert big.mean_part.verdict == "same" and "enough to see one that matters" in big.mean_part.why
+    assert "alpha/26 = 0.00192" in big.mean_part.why
+    with pytest.raises(ValueError):
+        judge_metric(unchanged, family_size=0)
+
+
+def test_runs_planned_at_alpha_over_m_give_the_power_under_holm():
+    """Monte Carlo of scipy's Welch test inside a family of 26 tests (25 with nothing changed, one
+    with a 1-sd shift), decided by Holm's adjusted p < 0.05: at the runs planned at alpha/26 the
+    shift is found at least 80 % of the time; at the 17 planned at alpha it is not (about 0.34).
+    2000 tries, standard error about 0.01."""
+    m, tries = 26, 2000
+    rng = np.random.default_rng(12)
+
+    def holm_power(n: int) -> float:
+        a = rng.normal(0.0, 1.0, (tries, m, n))
+        b = rng.normal(0.0, 1.0, (tries, m, n))
+        b[:, 0, :] += 1.0  # the one real change
+        p = stats.ttest_ind(a, b, axis=2, equal_var=False).pvalue
+        return float(np.mean([holm_adjust(list(row))[0] < 0.05 for row in p]))
+
+    planned = runs_needed(1.0, 1.0, 1.0, 0.05 / m)
+    assert holm_power(planned) >= 0.78
+    assert holm_power(17) == pytest.approx(0.34, abs=0.05)
+
+
 # ------------------------------------------------------------------ end to end on the simulator
 
 SUITE = '''
 name = "rebuild check"
 robot = "{robot}"
 course = "practice_course.toml"
-repeat = 25
+repeat = 45
 seed = 5
 
 [[cases]]
@@ -375,9 +428,17 @@ def test_same_robot_same_seed_is_the_same(sessions, tmp_path, monkeypatch, capsy
     stop = _cases(out)["stop past the first junction"]
     by_name = {m["name"]: m for m in stop["metrics"]}
     assert by_name["stop_mm"]["decides"] and not by_name["duration_s"]["decides"]
+    # "same" was planned at alpha over the deciding family's size, and says so.
+    deciding = data["family_sizes"]["deciding"]
+    assert deciding >= 4 and data["family_sizes"]["information"] >= 4
+    stop_mean = by_name["stop_mm"]["mean"]
+    assert stop_mean["runs_needed_alpha"] == pytest.approx(0.05 / deciding)
+    assert stop_mean["runs_needed"] > runs_needed(1.0, 1.0, 1.0)  # more than the uncorrected 17
+    assert by_name["duration_s"]["mean"]["runs_needed_alpha"] == pytest.approx(0.05 / data["family_sizes"]["information"])
     assert by_name["stop_mm"]["mean"]["diff"] == 0.0 and by_name["stop_mm"]["better_means"]["target"] == 70.0
     shown = capsys.readouterr().out
     assert "overall: SAME" in shown and "spin by encoders: SAME" in shown
+    assert f"alpha/{deciding} = {0.05 / deciding:.3g} for the {deciding} deciding tests" in " ".join(shown.split())
 
 
 def test_a_short_spin_scale_is_worse_and_undoing_it_is_better(sessions, tmp_path, monkeypatch, capsys):
@@ -417,8 +478,8 @@ def test_cases_in_one_session_only_are_listed_not_compared(sessions, tmp_path, m
     assert data["only_in_baseline"] == ["stop past the first junction"]
     assert data["only_in_current"] == ["quick pivot"]
     spin = data["cases"][0]
-    # 3 runs against 25 cannot tell; the comparison says how many more.
-    assert spin["runs"] == {"baseline": 25, "current": 3}
+    # 3 runs against 45 cannot tell; the comparison says how many more.
+    assert spin["runs"] == {"baseline": 45, "current": 3}
     if spin["verdict"] == "not enough runs":
         assert spin["more_runs"]["current"] > 0
     shown = capsys.readouterr().out
@@ -439,6 +500,21 @@ def test_bad_input_exits_2_and_names_the_file(sessions, tmp_path, monkeypatch, c
     missing = tmp_path / "none.sqlite"
     assert compare_cli(["--latest", "--db", str(missing)], monkeypatch) == 2
     assert str(missing) in capsys.readouterr().err
+
+
+def test_a_json_path_in_a_missing_folder_exits_2_before_comparing(sessions, tmp_path, monkeypatch, capsys):
+    """A --json path that cannot be written is bad input found before any work: no report, and
+    no exit code that could be mistaken for (or hide) exit 1 for "worse"."""
+    db, uids = sessions
+    bad = tmp_path / "nonexistent" / "x.json"
+    assert compare_cli([uids["first"], uids["rebuilt"], "--db", str(db), "--json", str(bad)], monkeypatch) == 2
+    shown = capsys.readouterr()
+    assert shown.out == "" and str(bad) in shown.err and "does not exist" in shown.err
+    assert "Traceback" not in shown.err and not bad.parent.exists()
+    # The same comparison with a writable path: the report, the file, and exit 1 for "worse".
+    good = tmp_path / "x.json"
+    assert compare_cli([uids["first"], uids["rebuilt"], "--db", str(db), "--json", str(good)], monkeypatch) == 1
+    assert "overall: WORSE" in capsys.readouterr().out and json.loads(good.read_text())["any_worse"]
 
 
 def test_latest_needs_two_sessions_of_the_suite(tmp_path, monkeypatch, capsys):

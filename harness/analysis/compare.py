@@ -42,18 +42,30 @@ Many tests at once
     family and the information-only tests another. compare_metric, for one metric alone, does
     not adjust.
 
+    The correction costs power, and the runs needed are planned for it: in a family of m tests
+    they are computed at alpha/m (Bonferroni), not at alpha. A test with p < alpha/m has a Holm
+    adjusted p <= m p < alpha, so Holm rejects at least whenever Bonferroni does: the runs that
+    give 80 % power at alpha/m give at least 80 % power under Holm (a safe upper bound; Holm's
+    later steps need fewer). Planning at alpha instead would overstate the power: with 26 tests a
+    1-sd shift needs 34 runs per side, and at the 17 that alpha = 0.05 asks for the power is 0.34.
+
 Verdicts
     A test with (adjusted) p < alpha decides: the mean (or the spread) moved, for the better or
     the worse. A test with p >= alpha says "same" only when the runs were enough to see a change
-    that matters: the runs per side at least those needed (80 % power, at the per-test alpha; with
-    the correction this is a lower bound) for the larger of the observed change and
+    that matters: the runs per side at least those needed (80 % power at alpha/m, m the number of
+    tests in its family, see above) for the larger of the observed change and
         - for the mean: a shift of SAME_MEAN_SD (1) standard deviation (the root mean square of
           the two sds): a shift smaller than the robot's own run-to-run scatter hardly changes
           where it ends up;
         - for the spread: the spread growing by SAME_SD_RATIO (a factor 2) over the smaller one.
-    When nothing changed, about 17 runs per side settle the mean (equal sds) and 10 to 20 the
-    spread (more for long-tailed data), so a suite's usual 20 to 25 runs can say "same"; a spread
-    that really doubled takes about 24 runs per side to detect. Otherwise the verdict
+    When nothing changed, with normal data and equal sds, the runs per side that settle the mean
+    and the spread (more for long-tailed data) grow with the family size m (alpha 0.05):
+        m            1    2    4    8   26
+        mean        17   21   24   28   34
+        spread      11   13   15   17   21
+    and a spread that really doubled takes 24, 29, 34, 40, 48 runs per side to detect. So a
+    suite's usual 20 to 25 runs can say "same" for a handful of deciding tests, not for dozens.
+    Otherwise the verdict
     is "not enough runs to tell", with how many more runs per side would settle it. The margins
     only separate "same" from "not enough runs"; they never hide a significant change.
 
@@ -397,6 +409,8 @@ class PartComparison:
                  set when the verdict is "not enough runs" or "same"
     more_runs    (baseline, current) runs still to make to reach runs_needed; None when unknown
     why          one line saying what decided it
+    power_alpha  the alpha runs_needed is planned at: alpha/m for a family of m tests (None when
+                 no runs were planned)
     """
 
     verdict: Verdict
@@ -405,6 +419,7 @@ class PartComparison:
     runs_needed: int | None
     more_runs: tuple[int, int] | None
     why: str
+    power_alpha: float | None = None
 
 
 @dataclass(frozen=True)
@@ -461,22 +476,33 @@ def _p_text(p: float, p_adj: float) -> str:
     return f"p = {p:.3g}" if p_adj == p else f"p = {p:.3g}, {p_adj:.3g} after Holm's correction"
 
 
-def _undecided(p: float, p_adj: float, needed: int | None, n_a: int, n_b: int, what: str) -> PartComparison:
-    """A non-significant test: "same" if the runs were enough for a change that matters."""
-    ps = _p_text(p, p_adj)
+def _power_text(alpha: float, family_size: int) -> str:
+    """At which alpha the runs were planned, e.g. "80 % power at alpha/26 = 0.00192"."""
+    if family_size == 1:
+        return f"{POWER:.0%} power at alpha {alpha:.3g}"
+    return f"{POWER:.0%} power at alpha/{family_size} = {alpha / family_size:.3g} for {family_size} tests"
+
+
+def _undecided(p: float, p_adj: float, needed: int | None, n_a: int, n_b: int, what: str,
+               alpha: float, family_size: int) -> PartComparison:
+    """A non-significant test: "same" if the runs were enough for a change that matters (planned
+    at alpha/family_size, see the module docstring)."""
+    ps, power = _p_text(p, p_adj), _power_text(alpha, family_size)
+    at = alpha / family_size
     if needed is not None and min(n_a, n_b) >= needed:
         return PartComparison("same", p, p_adj, needed, (0, 0),
                               f"{what}: no significant change ({ps}), and {needed} runs per side were "
-                              "enough to see one that matters")
+                              f"enough to see one that matters ({power})", at)
     if needed is None:
         return PartComparison("not enough runs", p, p_adj, None, None,
                               f"{what}: no significant change ({ps}); more than {MAX_RUNS} runs per side "
-                              "would be needed to tell")
+                              f"would be needed to tell ({power})", at)
     return PartComparison("not enough runs", p, p_adj, needed, _more(needed, n_a, n_b),
-                          f"{what}: no significant change ({ps}); {needed} runs per side would settle it")
+                          f"{what}: no significant change ({ps}); {needed} runs per side would settle it "
+                          f"({power})", at)
 
 
-def _mean_part(t: MetricTests, p_adj: float | None, alpha: float) -> PartComparison:
+def _mean_part(t: MetricTests, p_adj: float | None, alpha: float, family_size: int) -> PartComparison:
     n_a, n_b = t.n
     w = t.welch
     if w is None or p_adj is None:
@@ -489,11 +515,11 @@ def _mean_part(t: MetricTests, p_adj: float | None, alpha: float) -> PartCompari
     margin = SAME_MEAN_SD * math.sqrt((sd_a * sd_a + sd_b * sd_b) / 2.0)
     if margin == 0.0 and w.diff == 0.0:  # two identical constant samples
         return PartComparison("same", w.p, p_adj, None, (0, 0), "mean: both sides constant and equal")
-    needed = runs_needed(max(abs(w.diff), margin), sd_a, sd_b, alpha)
-    return _undecided(w.p, p_adj, needed, n_a, n_b, "mean")
+    needed = runs_needed(max(abs(w.diff), margin), sd_a, sd_b, alpha / family_size)
+    return _undecided(w.p, p_adj, needed, n_a, n_b, "mean", alpha, family_size)
 
 
-def _spread_part(t: MetricTests, p_adj: float | None, alpha: float) -> PartComparison:
+def _spread_part(t: MetricTests, p_adj: float | None, alpha: float, family_size: int) -> PartComparison:
     n_a, n_b = t.n
     bf = t.brown_forsythe
     if bf is None or p_adj is None:
@@ -510,8 +536,8 @@ def _spread_part(t: MetricTests, p_adj: float | None, alpha: float) -> PartCompa
     effect = max(abs(z_b - z_a), margin)
     if effect == 0.0:  # no scatter on either side
         return PartComparison("same", bf.p, p_adj, None, (0, 0), "spread: no scatter on either side")
-    needed = runs_needed(effect, float(np.std(za, ddof=1)), float(np.std(zb, ddof=1)), alpha)
-    return _undecided(bf.p, p_adj, needed, n_a, n_b, "spread")
+    needed = runs_needed(effect, float(np.std(za, ddof=1)), float(np.std(zb, ddof=1)), alpha / family_size)
+    return _undecided(bf.p, p_adj, needed, n_a, n_b, "spread", alpha, family_size)
 
 
 def metric_tests(name: str, baseline: ArrayLike, current: ArrayLike,
@@ -536,14 +562,18 @@ def metric_tests(name: str, baseline: ArrayLike, current: ArrayLike,
 
 
 def judge_metric(t: MetricTests, alpha: float = 0.05,
-                 p_adjusted: tuple[float | None, float | None] | None = None) -> MetricComparison:
+                 p_adjusted: tuple[float | None, float | None] | None = None,
+                 family_size: int = 1) -> MetricComparison:
     """Verdicts of one metric's two tests, decided on p_adjusted (mean, spread) when given, else
-    on the tests' own p-values."""
+    on the tests' own p-values. family_size is the number of tests those p-values were adjusted
+    over: the runs needed are planned at alpha/family_size (module docstring, "Many tests")."""
     if not 0.0 < alpha < 1.0:
         raise ValueError(f"alpha must be between 0 and 1, got {alpha}")
+    if family_size < 1:
+        raise ValueError(f"a family has at least 1 test, got {family_size}")
     p_mean, p_spread = p_adjusted if p_adjusted is not None else t.pvalues
-    mean_part = _mean_part(t, p_mean, alpha)
-    spread_part = _spread_part(t, p_spread, alpha)
+    mean_part = _mean_part(t, p_mean, alpha, family_size)
+    spread_part = _spread_part(t, p_spread, alpha, family_size)
     return MetricComparison(t, mean_part, spread_part, worst_verdict([mean_part.verdict, spread_part.verdict]))
 
 
@@ -555,14 +585,15 @@ def compare_metric(name: str, baseline: ArrayLike, current: ArrayLike,
 
 def judge_family(family: Sequence[MetricTests], alpha: float = 0.05) -> list[MetricComparison]:
     """Verdicts of several metrics whose tests form one family: every mean and spread test's p is
-    Holm-adjusted over all the family's tests, so the chance that any of them reports a change
-    that is not there stays below alpha."""
+    Holm-adjusted over all the family's m tests, so the chance that any of them reports a change
+    that is not there stays below alpha; the runs needed are planned at alpha/m to match."""
     raw = [(k, j, p) for k, t in enumerate(family) for j, p in enumerate(t.pvalues) if p is not None]
     adjusted = holm_adjust([p for _, _, p in raw])
     per_metric: list[list[float | None]] = [[None, None] for _ in family]
     for (k, j, _), p_adj in zip(raw, adjusted):
         per_metric[k][j] = p_adj
-    return [judge_metric(t, alpha, (p[0], p[1])) for t, p in zip(family, per_metric)]
+    size = max(1, len(raw))
+    return [judge_metric(t, alpha, (p[0], p[1]), size) for t, p in zip(family, per_metric)]
 
 
 def case_verdict(metrics: Sequence[MetricComparison], deciding: Sequence[str]) -> tuple[Verdict, tuple[int, int] | None]:
