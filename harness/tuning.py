@@ -6,16 +6,17 @@ the last steady gain and the first oscillating one gives the ultimate gain Ku, a
 there its period Tu. Gains follow from the Ziegler-Nichols (1942) table and gentler published
 rules beside it, and each candidate is driven several times to see which tracks best.
 
-How a run is judged (oscillation_of): after the first `skip_s` the error's half-cycles are cut by
-zero crossings with hysteresis; the period comes from the crossings (and, as a cross-check, from
-the spectrum's peak); growth per cycle from the peak amplitudes early and late in the run. A run
-oscillates steadily ("sustained") when its peaks no longer shrink (growth >= 1 - tolerance) and
-stay above a floor that sensor noise alone does not reach; it "grows" when they swell, or when the
-guard stopped the robot.
+How a run is judged (harness.analysis.oscillation.oscillation_of): after the first `skip_s` the
+error's half-cycles are cut by zero crossings with hysteresis; the period comes from the crossings
+(and, as a cross-check, from the spectrum's peak); growth per cycle from the peak amplitudes early
+and late in the run. A run oscillates steadily ("sustained") when its peaks no longer shrink
+(growth >= 1 - tolerance) and stay above a floor that sensor noise alone does not reach; it
+"grows" when they swell, or when the guard stopped the robot.
 
-The guard watches the telemetry while the robot runs (Session.run's on_telemetry hook
-has no per-batch callback) and stops the robot at once when the follower loses the line (all its
-sensors light) or when the error swings past a limit on several half-cycles in a row.
+The guard watches the telemetry while the robot runs (through Session.run's on_telemetry hook,
+called with each telemetry batch as it arrives) and stops the robot at once when the follower
+loses the line (all its sensors light) or when the error swings past a limit on several
+half-cycles in a row.
 """
 
 from __future__ import annotations
@@ -29,15 +30,24 @@ from typing import Any
 
 import numpy as np
 
+from harness.analysis.oscillation import (  # noqa: F401  (re-exported: tuning's callers and tests)
+    Oscillation,
+    crossing_times,
+    half_cycles,
+    oscillation_of,
+    spectrum_period,
+    zero_crossing_period,
+)
+from harness.calibrate.common import add_robot_options, load_robot
 from harness.errors import InputError, TrackproofError
-from harness.profile import RobotProfile, load_profile
-from harness.robot import RobotConnector
+from harness.links import Link, LinkSpec
+from harness.operator import Ask, OperatorStopped, ask_operator, confirm_real
+from harness.profile import RobotProfile
+from harness.robot import RobotConnector, open_real_link
 from harness.session import RunRecord, Session
 from harness.sim import SUITES_DIR
 from harness.telemetry import decode_batches
 from hub_side import wire
-
-Ask = Callable[[str], str]
 
 TUNING_COURSE = SUITES_DIR / "tuning_straight.toml"
 TELEMETRY_HZ = 100
@@ -45,129 +55,6 @@ TELEMETRY_HZ = 100
 
 class TuneFailed(TrackproofError):
     """The procedure could not find what it looks for (no oscillation, or one from the start)."""
-
-
-# ------------------------------------------------------------------ oscillation analysis
-
-
-def half_cycles(e: np.ndarray, hysteresis: float) -> tuple[list[int], list[int]]:
-    """Split a zero-mean signal into half-cycles: a half-cycle starts when the signal passes
-    +hysteresis or -hysteresis on the side opposite the last one. Returns (indices where each new
-    half-cycle starts, index of the largest |value| of each completed half-cycle)."""
-    starts: list[int] = []
-    peaks: list[int] = []
-    side = 0
-    peak = -1
-    for i, v in enumerate(e):
-        s = 1 if v > hysteresis else -1 if v < -hysteresis else 0
-        if s and s != side:
-            if side != 0:
-                peaks.append(peak)
-            starts.append(i)
-            side, peak = s, i
-        elif s and s == side and abs(v) > abs(e[peak]):
-            peak = i
-    return starts, peaks
-
-
-def crossing_times(t: np.ndarray, e: np.ndarray, starts: list[int]) -> np.ndarray:
-    """For each half-cycle start after the first, when the signal crossed zero on the way:
-    linear interpolation between the last two samples of opposite sign before it."""
-    times = []
-    for i in starts[1:]:
-        j = i
-        sign = np.sign(e[i])
-        while j > 0 and np.sign(e[j - 1]) == sign:
-            j -= 1
-        if j == 0:
-            continue
-        a, b = e[j - 1], e[j]
-        frac = a / (a - b) if a != b else 0.0
-        times.append(t[j - 1] + frac * (t[j] - t[j - 1]))
-    return np.asarray(times, dtype=float)
-
-
-def zero_crossing_period(t: np.ndarray, e: np.ndarray, hysteresis: float) -> float:
-    """Period from the mean spacing of zero crossings (two per cycle); NaN with fewer than three.
-
-    A half-cycle too small to pass the hysteresis hides two crossings and leaves a gap of about
-    three half-periods: spacings far from the median are left out."""
-    starts, _ = half_cycles(e, hysteresis)
-    times = crossing_times(t, e, starts)
-    if len(times) < 3:
-        return math.nan
-    gaps = np.diff(times)
-    middle = float(np.median(gaps))
-    kept = gaps[(gaps > 0.6 * middle) & (gaps < 1.4 * middle)]
-    return 2.0 * float(np.mean(kept)) if len(kept) else math.nan
-
-
-def spectrum_period(t: np.ndarray, e: np.ndarray, min_period_s: float = 0.0) -> float:
-    """Period of the strongest spectral line: Hann window, zero padding, and a parabola through
-    the peak bin and its neighbours on the log magnitude (common practice for spectral peaks).
-    Samples are taken as evenly spaced at their mean interval. NaN for a flat signal."""
-    n = len(e)
-    if n < 8:
-        return math.nan
-    dt = float(t[-1] - t[0]) / (n - 1)
-    x = (e - np.mean(e)) * np.hanning(n)
-    nfft = 1 << int(math.ceil(math.log2(n * 8)))
-    mag = np.abs(np.fft.rfft(x, nfft))
-    freqs = np.fft.rfftfreq(nfft, dt)
-    usable = freqs > 0
-    if min_period_s > 0:
-        usable &= freqs < 1.0 / min_period_s
-    if not usable.any() or mag[usable].max() <= 0:
-        return math.nan
-    k = int(np.flatnonzero(usable)[np.argmax(mag[usable])])
-    if 0 < k < len(mag) - 1 and mag[k - 1] > 0 and mag[k + 1] > 0:
-        a, b, c = np.log(mag[k - 1 : k + 2])
-        denom = a - 2 * b + c
-        shift = 0.5 * (a - c) / denom if denom else 0.0
-    else:
-        shift = 0.0
-    return 1.0 / ((k + shift) * (freqs[1] - freqs[0]))
-
-
-@dataclass(frozen=True)
-class Oscillation:
-    period_s: float  # from zero crossings
-    spectrum_period_s: float
-    half_cycles: int
-    amplitude_early: float  # mean |peak| in the first third of the analysed window
-    amplitude_late: float  # and in the last third
-    growth_per_cycle: float  # late over early amplitude, per period (1 = steady)
-    peak_t_s: tuple[float, ...] = ()
-    peak_abs: tuple[float, ...] = ()
-
-    def as_dict(self) -> dict[str, Any]:
-        return {"period_s": self.period_s, "spectrum_period_s": self.spectrum_period_s,
-                "half_cycles": self.half_cycles, "amplitude_early": self.amplitude_early,
-                "amplitude_late": self.amplitude_late, "growth_per_cycle": self.growth_per_cycle}
-
-
-def oscillation_of(t: np.ndarray, e: np.ndarray, *, skip_s: float = 0.5, hysteresis: float = 3.0) -> Oscillation:
-    """Period and growth of the oscillation in a controller-error record (see the module text)."""
-    t = np.asarray(t, dtype=float)
-    e = np.asarray(e, dtype=float)
-    keep = t >= (t[0] if len(t) else 0.0) + skip_s
-    t, e = t[keep], e[keep]
-    if len(e) < 8:
-        return Oscillation(math.nan, math.nan, 0, 0.0, 0.0, 0.0)
-    e = e - np.median(e)  # a steady offset (sensors not quite symmetric) is not oscillation
-    starts, peaks = half_cycles(e, hysteresis)
-    period = zero_crossing_period(t, e, hysteresis)
-    spec = spectrum_period(t, e)
-    peak_t = t[peaks]
-    peak_abs = np.abs(e[peaks])
-    third = len(peaks) // 3
-    if third < 1 or not math.isfinite(period):
-        return Oscillation(period, spec, len(peaks), 0.0, 0.0, 0.0, tuple(peak_t), tuple(peak_abs))
-    early, late = peak_abs[:third], peak_abs[-third:]
-    span_s = float(np.mean(peak_t[-third:]) - np.mean(peak_t[:third]))
-    growth = (float(np.mean(late)) / float(np.mean(early))) ** (period / span_s) if span_s > 0 else 0.0
-    return Oscillation(period, spec, len(peaks), float(np.mean(early)), float(np.mean(late)), growth,
-                       tuple(peak_t), tuple(peak_abs))
 
 
 @dataclass(frozen=True)
@@ -226,6 +113,8 @@ RULES: tuple[Rule, ...] = (
 
 # What the hub's follow_line can run: kp * e + kd * de/dt (no integral term).
 HUB_ROWS = ("ZN P", "ZN PD", "ZN PID", "Tyreus-Luyben PID", "no overshoot")
+PD_ONLY = ("the hub's follower is PD: the integral term is dropped; on curves a steady offset may "
+           "remain")
 
 
 @dataclass(frozen=True)
@@ -246,18 +135,24 @@ def rule_table(ku: float, tu: float) -> list[dict[str, Any]]:
 
 def hub_candidates(ku: float, tu: float) -> list[Candidate]:
     """The rows the hub's PD follower can run. Its derivative term is kd * de/dt with de/dt per
-    second, so kd = Kp * Td; rows with an integral term lose it (noted), which on a straight line
-    costs nothing: steering already integrates twice from error to lateral offset."""
+    second, so kd = Kp * Td. A row with an integral term runs without it, and says so in its
+    name ("... without I") and note: that is no longer the published rule."""
     out = []
     for rule in RULES:
         if rule.name not in HUB_ROWS:
             continue
         g = rule.gains(ku, tu)
-        note = rule.source
+        name, note = rule.name, rule.source
         if g["ti_s"] is not None:
-            note = f"integral (Ti = {g['ti_s']:.3f} s) dropped: the hub's follower is PD; {note}"
-        out.append(Candidate(rule.name, float(g["kp"]), float(g["kd"]), note))
+            name = f"{rule.name} without I"
+            note = f"{PD_ONLY} (Ti = {g['ti_s']:.3f} s); {note}"
+        out.append(Candidate(name, float(g["kp"]), float(g["kd"]), note))
     return out
+
+
+def candidate_count() -> int:
+    """How many gains tune() verifies: the current ones and every hub-runnable row."""
+    return 1 + sum(rule.name in HUB_ROWS for rule in RULES)
 
 
 # ------------------------------------------------------------------ the guard
@@ -420,17 +315,41 @@ def error_rms(record: RunRecord) -> float:
     return float(np.sqrt(np.mean(e * e))) if len(e) else math.nan
 
 
+def climb_gains(s: TuneSettings) -> list[float]:
+    """The Kp steps while looking for oscillation: kp_start times step, step^2, ..., ending at kp_max."""
+    gains = [s.kp_start]
+    while gains[-1] < s.kp_max:
+        gains.append(min(gains[-1] * s.step, s.kp_max))
+    return gains
+
+
+def plan_text(profile_id: str, link_name: str, s: TuneSettings) -> str:
+    """What the robot is about to do, with the run counts the procedure will really use."""
+    climb = len(climb_gains(s))
+    n = candidate_count()
+    verify = n * s.verify_runs
+    return (f"About to tune {profile_id} over {link_name}: follow_line at {s.speed_pct:g} % for {s.time_s:g} s "
+            f"per run. Kp is raised from {s.kp_start:g} by x{s.step:g} until the robot oscillates (up to "
+            f"{climb} runs), then {s.bisections} runs narrow it down, then {s.verify_runs} runs each for {n} "
+            f"gains (the current ones and {n - 1} from the tables): {verify} runs; up to "
+            f"{climb + s.bisections + verify} runs in all. Put it on a straight line at least 1.5 m long, a "
+            "little (about 5 mm) to one side of the line. It stops by itself when it loses the line.")
+
+
 class Tuner:
     """Runs the trials on one robot. On the simulator each run starts from the course's start
     (re-placed, with its placement error); on a real robot the operator puts it back."""
 
-    def __init__(self, connector: RobotConnector, settings: TuneSettings, ask: Ask = input,
+    def __init__(self, connector: RobotConnector, settings: TuneSettings, ask: Ask = ask_operator,
                  on_trial: Callable[[Trial], None] | None = None) -> None:
         profile = connector.profile
         follow = profile.follow.get(settings.direction)
         if follow is None:
             raise InputError(f"the profile has no [follow.{settings.direction}] table to tune",
                              file=profile.source or None, key=f"follow.{settings.direction}")
+        if settings.limit is not None and not (math.isfinite(settings.limit) and settings.limit > 0):
+            # NaN would never trip the guard and 0 would trip it on every run.
+            raise InputError(f"the guard's limit must be a number above 0, got {settings.limit}", key="limit")
         self.connector = connector
         self.profile = profile
         self.follow = follow
@@ -462,7 +381,7 @@ class Tuner:
             answer = self.ask(f"Put the robot back at the start of the straight, a little (about 5 mm) to one "
                               f"side of the line; Enter to run kp={kp:.3f} kd={kd:.4f}, q to quit: ")
             if answer.strip().lower() == "q":
-                raise TuneFailed("stopped by the operator; nothing written")
+                raise OperatorStopped("stopped by the operator; nothing concluded or written")
         self.runs += 1
         sensors = list(self.session.hub.sensors)
         columns = [sensors.index(name) for name in self.follow.sensors]
@@ -493,8 +412,8 @@ class Tuner:
     def find_ultimate(self) -> Ultimate:
         s = self.settings
         trials: list[Trial] = []
-        kp, stable, oscillating = s.kp_start, None, None
-        while kp <= s.kp_max * (1 + 1e-9):
+        stable, oscillating = None, None
+        for kp in climb_gains(s):
             t = self.trial(kp)
             trials.append(t)
             if t.verdict == "lost":
@@ -504,7 +423,6 @@ class Tuner:
                 oscillating = t
                 break
             stable = t
-            kp = min(kp * s.step, s.kp_max) if kp < s.kp_max else kp * s.step
         if oscillating is None:
             raise TuneFailed(f"no sustained oscillation up to kp={s.kp_max:g}: the loop stays damped at "
                              f"{s.speed_pct:g} % speed; try a higher --speed-pct")
@@ -548,16 +466,20 @@ class Tuner:
 
 
 def best_verified(results: list[Verification]) -> Verification | None:
-    """Among the published rows whose runs were all clean, the gentlest (lowest kp) whose mean
-    error RMS is within one standard error of the lowest mean: the "one standard error" rule of
-    Breiman, Friedman, Olshen & Stone, Classification and Regression Trees (1984) [from memory].
-    A few runs cannot tell close rows apart, and the gentler one amplifies sensor noise less."""
-    rows = [v for v in results if v.clean and v.candidate.name != "current"]
+    """Among the candidates whose runs were all clean (the current gains included), those whose
+    mean error RMS is within one standard error of the lowest mean: the "one standard error" rule
+    of Breiman, Friedman, Olshen & Stone, Classification and Regression Trees (1984) [from memory].
+    A few runs cannot tell them apart, so the current gains are kept if they are among them (no
+    change without evidence); otherwise the gentlest row (lowest kp), which amplifies sensor noise
+    less. None when nothing ran clean."""
+    rows = [v for v in results if v.clean]
     if not rows:
         return None
     best = min(rows, key=lambda v: v.mean)
     margin = best.sd / math.sqrt(len(best.rms)) if len(best.rms) > 1 else 0.0
-    return min((v for v in rows if v.mean <= best.mean + margin), key=lambda v: v.candidate.kp)
+    close = [v for v in rows if v.mean <= best.mean + margin]
+    current = [v for v in close if v.candidate.name == "current"]
+    return current[0] if current else min(close, key=lambda v: v.candidate.kp)
 
 
 @dataclass
@@ -577,12 +499,12 @@ class TuneReport:
                 "recommended": None if self.recommended is None else self.recommended.as_dict()}
 
 
-def tune(connector: RobotConnector, settings: TuneSettings, ask: Ask = input,
+def tune(connector: RobotConnector, settings: TuneSettings, ask: Ask = ask_operator,
          on_trial: Callable[[Trial], None] | None = None) -> TuneReport:
     """Find Ku and Tu, then drive the current gains and every hub-runnable row `verify_runs` times."""
     with Tuner(connector, settings, ask, on_trial) as tuner:
         assert tuner.session is not None
-        _confirm(tuner.session, connector, settings, ask)
+        confirm_real(tuner.session, plan_text(connector.profile.id, connector.link_name, settings), ask)
         ultimate = tuner.find_ultimate()
         if not math.isfinite(ultimate.tu_s):
             raise TuneFailed(f"kp={ultimate.kp_oscillating:.3f} oscillated but no period could be measured")
@@ -591,22 +513,6 @@ def tune(connector: RobotConnector, settings: TuneSettings, ask: Ask = input,
         verification = tuner.verify(candidates) if settings.verify_runs > 0 else []
     return TuneReport(connector.profile, settings, ultimate, rule_table(ultimate.ku, ultimate.tu_s),
                       verification, best_verified(verification))
-
-
-def _confirm(session: Session, connector: RobotConnector, settings: TuneSettings, ask: Ask) -> None:
-    from harness.operator import SAFETY_NOTE
-
-    hub = session.hub
-    if hub is None or hub.board.get("simulated"):
-        return
-    answer = ask(f"About to tune {connector.profile.id} over {connector.link_name}: follow_line at "
-                 f"{settings.speed_pct:g} % for {settings.time_s:g} s per run, Kp raised from "
-                 f"{settings.kp_start:g} until the robot oscillates, then about {5 * settings.verify_runs + 12} "
-                 "more runs. Put it on a straight line at least 1.5 m long, a little (about 5 mm) to one side "
-                 "of the line. It stops by itself when it loses the line; Ctrl-C stops it at any time.\n"
-                 f"{SAFETY_NOTE}\nType yes to start: ")
-    if answer.strip().lower() not in ("y", "yes"):
-        raise TuneFailed("not started; nothing moved")
 
 
 # ------------------------------------------------------------------ command line
@@ -627,48 +533,58 @@ def print_report(report: TuneReport) -> None:
         ti = "-" if row["ti_s"] is None else f"{row['ti_s']:.4f}"
         td = "-" if row["td_s"] is None else f"{row['td_s']:.4f}"
         print(f"  {row['rule']:18} Kp {row['kp']:7.4f}  Ti {ti:>7}  Td {td:>7}  kd {row['kd']:7.5f}  ({row['source']})")
-    print("  The hub's follower is PD (kp, kd): rows with an integral term run without it; on a straight "
-          "line the steering already integrates twice from error to offset.")
+    print(f"  Rows with an integral term run as \"... without I\": {PD_ONLY}.")
     if report.verification:
         print(f"Verification, {s.verify_runs} runs each (error RMS over the run, %):")
         for v in report.verification:
             flag = "" if v.clean else "  not clean: " + ", ".join(sorted(set(v.verdicts) - {"damped"}))
-            print(f"  {v.candidate.name:18} kp {v.candidate.kp:7.4f} kd {v.candidate.kd:7.5f}: "
+            print(f"  {v.candidate.name:27} kp {v.candidate.kp:7.4f} kd {v.candidate.kd:7.5f}: "
                   f"mean {v.mean:6.2f} sd {v.sd:5.2f}{flag}")
     rec = report.recommended
     if rec is None:
-        print("No published row ran clean on every run: keep the current gains.")
+        if report.verification:
+            print("Nothing ran clean on every run: no recommendation; keep the current gains.")
+    elif rec.candidate.name == "current":
+        print(f"Recommended: keep the current gains (kp {rec.candidate.kp:.4f}, kd {rec.candidate.kd:.5f}; error "
+              f"RMS {rec.mean:.2f} sd {rec.sd:.2f}): within one standard error of the best at this speed "
+              f"({s.speed_pct:g} %).")
     else:
         current = next((v for v in report.verification if v.candidate.name == "current"), None)
-        versus = (f" (current gains: {current.mean:.2f} sd {current.sd:.2f})" if current is not None else "")
+        versus = (f" (current gains: {current.mean:.2f} sd {current.sd:.2f}"
+                  f"{'' if current.clean else ', not clean'})" if current is not None else "")
         print(f"Recommended: {rec.candidate.name}: kp {rec.candidate.kp:.4f}, kd {rec.candidate.kd:.5f}; error RMS "
               f"{rec.mean:.2f} sd {rec.sd:.2f}{versus}. The gentlest row within one standard error of the "
-              f"best; gains hold for this speed ({s.speed_pct:g} %).")
+              f"best, and the current gains are not; gains hold for this speed ({s.speed_pct:g} %).")
 
 
-def cmd_tune(args: argparse.Namespace, ask: Ask = input) -> int:
-    if args.write and args.robot is None:
-        raise InputError("needs --robot PATH: the profile to update (the bundled example is never "
-                         "written)", key="--write")
-    if not 0 < args.kp_start <= 100:
-        raise InputError(f"must be in (0, 100], got {args.kp_start:g}", key="--kp-start")
-    if not 1.05 <= args.step <= 4:
-        raise InputError(f"must be between 1.05 and 4, got {args.step:g}", key="--step")
-    if args.speed_pct is not None and not 5 <= args.speed_pct <= 100:
-        raise InputError(f"must be between 5 and 100, got {args.speed_pct:g}", key="--speed-pct")
-    if not 1 <= args.time_s <= 60:
-        raise InputError(f"must be between 1 and 60 s, got {args.time_s:g}", key="--time-s")
-    from harness.sim import DEFAULT_PROFILE
+def _check_number(value: float | None, key: str, low: float, high: float, *, low_open: bool = False,
+                  unit: str = "") -> None:
+    """A float option: finite and within [low, high] ((low, high] with low_open); InputError naming it.
+    argparse's float() takes "nan" and "inf", which every comparison below would let through or trip on."""
+    if value is None:
+        return
+    inside = low < value <= high if low_open else low <= value <= high
+    if not math.isfinite(value) or not inside:
+        span = f"({low:g}, {high:g}]" if low_open else f"[{low:g}, {high:g}]"
+        raise InputError(f"must be a number in {span}{unit}, got {value:g}", key=key)
 
-    profile = load_profile(args.robot or DEFAULT_PROFILE)
+
+def cmd_tune(args: argparse.Namespace, ask: Ask = ask_operator,
+             open_link: Callable[[LinkSpec, RobotProfile], Link] = open_real_link) -> int:
+    _check_number(args.kp_start, "--kp-start", 0, 100, low_open=True)
+    _check_number(args.step, "--step", 1.05, 4)
+    _check_number(args.speed_pct, "--speed-pct", 5, 100)
+    _check_number(args.time_s, "--time-s", 1, 60, unit=" s")
+    # The guard's limit is in error units (reflectance %, at most 100 apart).
+    _check_number(args.limit, "--limit", 0, 100, low_open=True)
+    course = args.course
+    if course is None and args.link == "sim":
+        course = TUNING_COURSE
+    profile, connector = load_robot(argparse.Namespace(**{**vars(args), "course": course}), open_link)
     follow = profile.follow.get(args.direction)
     if follow is None:
         raise InputError(f"the profile has no [follow.{args.direction}] table to tune", file=profile.source,
                          key=f"follow.{args.direction}")
-    course = args.course
-    if course is None and args.link == "sim":
-        course = TUNING_COURSE
-    connector = RobotConnector(profile, args.link, course=course, seed=args.seed)
     settings = TuneSettings(direction=args.direction, speed_pct=args.speed_pct or follow.speed_pct,
                             time_s=args.time_s, kp_start=args.kp_start, step=args.step,
                             bisections=args.bisections, verify_runs=args.verify_runs, limit=args.limit)
@@ -683,6 +599,10 @@ def cmd_tune(args: argparse.Namespace, ask: Ask = input) -> int:
         if rec is None:
             print("Nothing written: no recommendation.")
             return 1
+        if rec.candidate.name == "current":
+            print(f"Nothing written: the current [follow.{args.direction}] gains are within one standard "
+                  f"error of the best; {args.robot} is left as it was.")
+            return 0
         from harness.calibrate.writeback import write_profile_values
 
         write_profile_values(args.robot, {"kp": round(rec.candidate.kp, 4), "kd": round(rec.candidate.kd, 5)},
@@ -693,7 +613,9 @@ def cmd_tune(args: argparse.Namespace, ask: Ask = input) -> int:
     return 0
 
 
-def _positive_int0(text: str) -> int:
+def _zero_or_more(text: str) -> int:
+    """Like harness.calibrate.common.positive_int, but 0 is allowed (0 bisections, or no
+    verification runs, are meaningful here)."""
     try:
         value = int(text)
     except ValueError:
@@ -704,30 +626,26 @@ def _positive_int0(text: str) -> int:
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
-    from harness.sim import DEFAULT_PROFILE
-
+    # "resolve": add_robot_options' --course and --repeat are replaced below by tune's own.
     p = sub.add_parser(
-        "tune", help="line-follower gains by the Ziegler-Nichols ultimate-gain method",
+        "tune", help="line-follower gains by the Ziegler-Nichols ultimate-gain method", conflict_handler="resolve",
         description="Raise the line follower's Kp (proportional only) in steps until the controller error "
                     "oscillates steadily, find the ultimate gain Ku and period Tu, recommend gains from the "
                     "Ziegler-Nichols (1942) table and gentler rules, and drive each several times to see which "
-                    "tracks best. The robot is stopped at once if it loses the line or swings too far.")
-    p.add_argument("--robot", type=Path, help=f"robot profile (default {DEFAULT_PROFILE.name}); --write updates it")
+                    "tracks best (the current gains are kept when they track as well). The robot is stopped at "
+                    "once if it loses the line or swings too far.")
+    add_robot_options(p, repeat=5)
     p.add_argument("--course", type=Path, help=f"course for the simulated link (default {TUNING_COURSE.name})")
-    p.add_argument("--link", default="sim", help="sim, sim:COURSE, serial:PORT[@BAUD], serial:auto or "
-                                                 "ble:NAME_OR_ADDRESS (default sim)")
-    p.add_argument("--seed", type=int, default=0, help="simulator seed (default 0)")
+    p.add_argument("--verify-runs", "--repeat", type=_zero_or_more, default=5,
+                   help="runs per candidate to verify the gains (default 5; 0 skips)")
     p.add_argument("--direction", choices=("forward", "backward"), default="forward",
                    help="which [follow.*] gains to tune (default forward)")
     p.add_argument("--speed-pct", type=float, help="speed of every run (default: the profile's speed_pct)")
     p.add_argument("--time-s", type=float, default=5.0, help="length of every run (default 5 s)")
     p.add_argument("--kp-start", type=float, default=0.1, help="first Kp (default 0.1)")
     p.add_argument("--step", type=float, default=1.5, help="factor between Kp steps (default 1.5)")
-    p.add_argument("--bisections", type=_positive_int0, default=4, help="bisection runs for Ku (default 4)")
-    p.add_argument("--verify-runs", type=_positive_int0, default=5,
-                   help="runs per candidate to verify the gains (default 5; 0 skips)")
+    p.add_argument("--bisections", type=_zero_or_more, default=4, help="bisection runs for Ku (default 4)")
     p.add_argument("--limit", type=float, help="guard: stop when |error| passes this on 4 half-cycles in a row "
-                                               "(default 45 for a sensor pair, 25 for one sensor)")
-    p.add_argument("--json", type=Path, metavar="PATH", help="write the full result as JSON here")
-    p.add_argument("--write", action="store_true", help="write the recommended kp and kd into the --robot profile")
+                                               "(above 0, at most 100; default 45 for a sensor pair, 25 for one "
+                                               "sensor)")
     p.set_defaults(func=cmd_tune)

@@ -14,28 +14,32 @@ import numpy as np
 import pytest
 from scipy import signal, stats
 
+from harness.analysis.oscillation import oscillation_of, spectrum_period, zero_crossing_period
 from harness.calibrate.writeback import write_profile_values
 from harness.errors import InputError
+from harness.links import SimLink
+from harness.operator import OperatorStopped
 from harness.profile import load_profile
 from harness.robot import RobotConnector
-from harness.sim import DEFAULT_PROFILE, truth_snapshot
-from harness.sim.course import Pose
+from harness.sim import DEFAULT_PROFILE, Simulation, truth_snapshot
+from harness.sim.course import Pose, load_course
 from harness.tuning import (
     RULES,
     TUNING_COURSE,
+    Candidate,
     Guard,
     Judgement,
     Rule,
     TuneSettings,
     Tuner,
+    Verification,
     add_parser,
+    best_verified,
+    cmd_tune,
     guarded_run,
     hub_candidates,
-    oscillation_of,
     rule_table,
-    spectrum_period,
     tune,
-    zero_crossing_period,
 )
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -78,10 +82,15 @@ def test_ziegler_nichols_rows_match_the_worked_example() -> None:
 def test_hub_candidates_are_pd_with_kd_equal_kp_td() -> None:
     ku, tu = 2.0, 0.5
     cands = {c.name: c for c in hub_candidates(ku, tu)}
-    assert set(cands) == {"ZN P", "ZN PD", "ZN PID", "Tyreus-Luyben PID", "no overshoot"}
-    assert (cands["ZN PID"].kp, cands["ZN PID"].kd) == (pytest.approx(1.2), pytest.approx(0.075))
-    assert "integral" in cands["ZN PID"].note and "dropped" in cands["ZN PID"].note
-    assert "integral" not in cands["ZN PD"].note
+    # A row run without its integral is no longer the published rule, and says so in its name.
+    assert set(cands) == {"ZN P", "ZN PD", "ZN PID without I", "Tyreus-Luyben PID without I",
+                          "no overshoot without I"}
+    pid = cands["ZN PID without I"]
+    assert (pid.kp, pid.kd) == (pytest.approx(1.2), pytest.approx(0.075))
+    for name in ("ZN PID without I", "Tyreus-Luyben PID without I", "no overshoot without I"):
+        assert "the integral term is dropped; on curves a steady offset may remain" in cands[name].note
+        assert "costs nothing" not in cands[name].note
+    assert "integral" not in cands["ZN PD"].note and "integral" not in cands["ZN P"].note
     assert cands["ZN P"].kd == 0.0
 
 
@@ -270,26 +279,139 @@ def test_cli_writes_the_recommended_gains_into_the_follow_table(tmp_path: Path, 
     assert args.func(args) == 0
     printed = capsys.readouterr().out
     assert "Ultimate gain Ku" in printed and "Recommended:" in printed and "Wrote [follow.forward]" in printed
+    assert "on curves a steady offset may remain" in printed and "integrates twice" not in printed
     result = json.loads(out_json.read_text())
+    assert "ZN PID without I" in [v["name"] for v in result["verification"]]
     rec = result["recommended"]
+    assert rec["name"] != "current"
     written = load_profile(robot)
     assert written.follow["forward"].kp == pytest.approx(rec["kp"], abs=1e-4)
     assert written.follow["forward"].kd == pytest.approx(rec["kd"], abs=1e-5)
     assert written.follow["backward"] == PROFILE.follow["backward"]  # the other direction untouched
     text = robot.read_text()
-    assert "follow.forward.kp 0.5 -> " in text and "trackproof tune" in text
+    assert "follow.forward.kp 0.5 -> " in text and f"trackproof tune: {rec['name']} from Ku" in text
     assert "# Forward: the pair straddles the line" in text
 
 
 def test_cli_refuses_bad_options(tmp_path: Path) -> None:
     parser = argparse.ArgumentParser()
     add_parser(parser.add_subparsers())
+    # NaN would switch the guard off (no peak is ever >= nan); 0 or less would trip it on every run.
     for argv, key in ((["--write"], "--write"), (["--kp-start", "0"], "--kp-start"),
-                      (["--speed-pct", "300"], "--speed-pct"), (["--step", "1.0"], "--step")):
+                      (["--speed-pct", "300"], "--speed-pct"), (["--step", "1.0"], "--step"),
+                      (["--limit", "nan"], "--limit"), (["--limit", "0"], "--limit"),
+                      (["--limit", "-5"], "--limit"), (["--limit", "inf"], "--limit"),
+                      (["--kp-start", "nan"], "--kp-start"), (["--step", "inf"], "--step"),
+                      (["--speed-pct", "nan"], "--speed-pct"), (["--time-s", "inf"], "--time-s")):
         args = parser.parse_args(["tune", *argv])
         with pytest.raises(InputError) as info:
             args.func(args)
-        assert info.value.key == key
+        assert info.value.key == key and info.value.exit_code == 2, argv
+    with pytest.raises(InputError) as info:  # the same through the API
+        Tuner(RobotConnector(PROFILE, "sim", course=TUNING_COURSE), TuneSettings(limit=math.nan))
+    assert info.value.key == "limit"
+    args = parser.parse_args(["tune", "--repeat", "3"])  # the calibrate commands' name for it
+    assert args.verify_runs == 3 and not hasattr(args, "repeat")
+
+
+def _verification(name: str, kp: float, rms: tuple[float, ...], clean: bool = True) -> Verification:
+    verdicts = ("damped",) * len(rms) if clean else ("sustained",) + ("damped",) * (len(rms) - 1)
+    return Verification(Candidate(name, kp, 0.0, ""), rms, verdicts)
+
+
+def test_best_verified_keeps_the_current_gains_unless_a_row_is_clearly_better() -> None:
+    best = _verification("ZN PD", 1.6, (5.0, 5.2, 4.8, 5.0))  # mean 5.0, standard error 0.0816
+    gentler = _verification("ZN P", 1.0, (5.05, 5.05, 5.05, 5.05))
+    # Current better than every row: kept (ignoring it would replace better gains).
+    picked = best_verified([_verification("current", 0.5, (4.0, 4.1, 3.9, 4.0)), best, gentler])
+    assert picked.candidate.name == "current"
+    # Current within one standard error of the best row: kept, even though a row is a little better.
+    picked = best_verified([_verification("current", 0.5, (5.07, 5.07, 5.07, 5.07)), best, gentler])
+    assert picked.candidate.name == "current"
+    # Current clearly worse: the gentlest row within one standard error of the best.
+    picked = best_verified([_verification("current", 0.5, (6.0, 6.1, 5.9, 6.0)), best, gentler])
+    assert picked.candidate.name == "ZN P"
+    # Current best by mean but not clean (it oscillated once): not kept.
+    picked = best_verified([_verification("current", 0.5, (4.0, 4.1, 3.9, 4.0), clean=False), best])
+    assert picked.candidate.name == "ZN PD"
+    assert best_verified([_verification("current", 0.5, (4.0, 4.1), clean=False)]) is None
+
+
+def test_cli_write_leaves_the_profile_alone_when_the_current_gains_are_as_good(tmp_path: Path, capsys) -> None:
+    # A quiet course (no sensor noise, no placement error) so that the second tune sees the same Ku
+    # and the same runs: its current gains are then the first one's recommendation.
+    course = _course(tmp_path, sensor_noise_pct="0.0", placement_sd_mm="0.0", placement_sd_deg="0.0")
+    robot = tmp_path / "robot.toml"
+    robot.write_text((ROOT / "suites" / "practice_robot.toml").read_text())
+    parser = argparse.ArgumentParser()
+    add_parser(parser.add_subparsers())
+    args = parser.parse_args(["tune", "--robot", str(robot), "--course", str(course), "--verify-runs", "2", "--write"])
+    assert args.func(args) == 0
+    assert "Wrote [follow.forward]" in capsys.readouterr().out
+    tuned = robot.read_text()
+    assert tuned != (ROOT / "suites" / "practice_robot.toml").read_text()
+    assert args.func(args) == 0
+    printed = capsys.readouterr().out
+    assert "Recommended: keep the current gains" in printed
+    assert "Nothing written: the current [follow.forward] gains are within one standard error" in printed
+    assert robot.read_text() == tuned
+
+
+def _real_looking_robot(seed: int) -> tuple[Simulation, argparse.Namespace]:
+    """The simulated hub behind a 'serial' link, not saying it is simulated: tune treats it as a
+    real robot (asks before starting, and between runs asks for it to be put back)."""
+    sim = Simulation(load_course(TUNING_COURSE), PROFILE, seed=seed)
+    sim.board.capabilities = {"gyro": True, "battery": True}
+    parser = argparse.ArgumentParser()
+    add_parser(parser.add_subparsers())
+    return sim, parser.parse_args(["tune", "--link", "serial:/dev/fake-hub", "--verify-runs", "2"])
+
+
+def test_real_robot_prompt_states_the_runs_it_will_make(capsys, tmp_path: Path) -> None:
+    sim, args = _real_looking_robot(seed=4)
+    args.json = tmp_path / "tune.json"
+    prompts: list[str] = []
+
+    def ask(prompt: str) -> str:
+        prompts.append(prompt)
+        if "Put the robot back" in prompt:
+            sim.reset()
+        return "yes" if prompt.endswith("Type yes to start: ") else ""
+
+    assert cmd_tune(args, ask=ask, open_link=lambda spec, profile: SimLink(sim)) == 0
+    first = prompts[0]
+    assert first.endswith("Type yes to start: ") and "Safety" in first
+    result = json.loads(args.json.read_text())
+    runs = 1 + sum("Put the robot back" in p for p in prompts)
+    climb_and_bisect = len(result["ultimate"]["trials"])
+    verified = runs - climb_and_bisect
+    # Six gains (the current ones and five rows) twice each: 12 runs, not "about 5 * 2 + 12 more".
+    assert len(result["verification"]) == 6 and verified == 12
+    assert "2 runs each for 6 gains (the current ones and 5 from the tables): 12 runs;" in first
+    stated_total = int(first.split("up to ")[2].split(" runs in all")[0])
+    assert climb_and_bisect + verified <= stated_total
+
+
+def test_real_robot_refusal_quit_and_closed_input_stop_cleanly(monkeypatch) -> None:
+    # Refused at the start: nothing moves; exit 130 as for the calibrate commands.
+    sim, args = _real_looking_robot(seed=6)
+    before = sim.robot.travel_mm
+    with pytest.raises(OperatorStopped) as info:
+        cmd_tune(args, ask=lambda prompt: "no", open_link=lambda spec, profile: SimLink(sim))
+    assert info.value.exit_code == 130 and sim.robot.travel_mm == before
+    # "q" at the put-back prompt: the same clean stop.
+    sim, args = _real_looking_robot(seed=6)
+    with pytest.raises(OperatorStopped):
+        cmd_tune(args, ask=lambda prompt: "yes" if prompt.endswith("start: ") else "q",
+                 open_link=lambda spec, profile: SimLink(sim))
+    # Input closed (unattended, piped): the default prompt stops cleanly, no EOFError traceback.
+    def closed(prompt: str = "") -> str:
+        raise EOFError
+
+    monkeypatch.setattr("builtins.input", closed)
+    sim, args = _real_looking_robot(seed=6)
+    with pytest.raises(OperatorStopped):
+        cmd_tune(args, open_link=lambda spec, profile: SimLink(sim))
 
 
 def test_table_writeback_adds_missing_keys_and_refuses_missing_tables(tmp_path: Path) -> None:
