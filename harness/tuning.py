@@ -30,14 +30,7 @@ from typing import Any
 
 import numpy as np
 
-from harness.analysis.oscillation import (  # noqa: F401  (re-exported: tuning's callers and tests)
-    Oscillation,
-    crossing_times,
-    half_cycles,
-    oscillation_of,
-    spectrum_period,
-    zero_crossing_period,
-)
+from harness.analysis.oscillation import Oscillation, oscillation_of
 from harness.calibrate.common import add_robot_options, load_robot
 from harness.errors import InputError, TrackproofError
 from harness.links import Link, LinkSpec
