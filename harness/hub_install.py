@@ -83,7 +83,7 @@ def _open_problem(port: str, baudrate: int) -> str:
         text = str(exc).lower()
         if code == errno.ENOENT or "no such file" in text or "cannot find the file" in text:
             return _missing(port)
-        # Windows says "access is denied" for a port another program holds.
+        # Some systems say "access is denied" for a port another program holds.
         if code in (errno.EBUSY, errno.EAGAIN) or "lock" in text or "busy" in text or "access is denied" in text:
             return (f"serial port {port} is busy: another program has it open (a terminal, an "
                     "editor's REPL, or a trackproof session); close it and try again")

@@ -299,7 +299,7 @@ class _WriterLock:
                 os.close(fd)
 
 
-if os.name == "nt":  # pragma: no cover - exercised on Windows only
+if os.name == "nt":  # pragma: no cover - exercised only where os.name is "nt"
     import msvcrt
 
     def _try_lock(fd: int) -> None:
