@@ -12,8 +12,9 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-from harness.errors import InputError, LinkError
+from harness.errors import InputError, LinkError, TrackproofError
 from harness.links import Faults, FaultyLink, Link, LinkSpec, SimLink, parse_link
+from harness.operator import Ask, OperatorStopped
 from harness.profile import RobotProfile
 from harness.session import Session
 from harness.sim import Simulation
@@ -37,8 +38,10 @@ class RobotConnector:
 
     def __init__(self, profile: RobotProfile, link: str = "sim", *, course: Path | None = None,
                  seed: int = 0, faults: Faults | None = None, source: str | None = None,
+                 reset_routine: str | None = None,
                  open_link: Callable[[LinkSpec, RobotProfile], Link] = open_real_link) -> None:
         self.profile = profile
+        self.reset_routine = reset_routine
         self.link_name = link
         self.spec = parse_link(link)
         self.seed = seed
@@ -69,6 +72,28 @@ class RobotConnector:
             session.close()
             raise
         return session
+
+    def place_at_start(self, session: Session, ask: Ask, prompt: str, *, can_skip: bool = False) -> bool:
+        """Put the robot back at the start before a run. The simulator re-places it; a hub with a
+        reset routine (the one asked for, or a simulated hub's sim_reset) drives itself back;
+        otherwise the operator does it when the prompt says. False if the operator skips the run."""
+        if self.sim is not None:
+            self.sim.reset()
+            return True
+        assert session.hub is not None
+        routine = self.reset_routine or ("sim_reset" if "sim_reset" in session.hub.routines else None)
+        if routine is not None:
+            if routine not in session.hub.routines:
+                raise InputError(f"hub {session.hub.robot_id} has no routine {routine!r} (it has: "
+                                 f"{', '.join(session.hub.routines) or 'none'})", key="--reset")
+            record = session.run(routine, {})
+            if record.status != "done":
+                raise TrackproofError(f"reset routine {routine} ended {record.status}; nothing concluded")
+            return True
+        answer = ask(f"{prompt}; Enter to go{', s to skip' if can_skip else ''}, q to quit: ").strip().lower()
+        if answer == "q":
+            raise OperatorStopped("stopped by the operator; nothing concluded or written")
+        return not (can_skip and answer == "s")
 
     def reconnect(self, lost: Session | None, why: Exception) -> Session:
         """Close the lost session and open a new one, up to the profile's `reconnects` tries."""

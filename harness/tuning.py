@@ -34,7 +34,7 @@ from harness.analysis.oscillation import Oscillation, oscillation_of
 from harness.calibrate.common import add_robot_options, load_robot
 from harness.errors import InputError, TrackproofError
 from harness.links import Link, LinkSpec
-from harness.operator import Ask, OperatorStopped, ask_operator, confirm_real
+from harness.operator import Ask, ask_operator, confirm_real
 from harness.profile import RobotProfile
 from harness.robot import RobotConnector, open_real_link
 from harness.session import RunRecord, Session
@@ -367,14 +367,9 @@ class Tuner:
 
     def trial(self, kp: float, kd: float = 0.0) -> Trial:
         assert self.session is not None and self.session.hub is not None
-        sim = self.connector.sim
-        if sim is not None:
-            sim.reset()
-        elif self.runs:
-            answer = self.ask(f"Put the robot back at the start of the straight, a little (about 5 mm) to one "
-                              f"side of the line; Enter to run kp={kp:.3f} kd={kd:.4f}, q to quit: ")
-            if answer.strip().lower() == "q":
-                raise OperatorStopped("stopped by the operator; nothing concluded or written")
+        if self.connector.sim is not None or self.runs:
+            self.connector.place_at_start(self.session, self.ask, "Put the robot back at the start of the straight, "
+                                          f"a little (about 5 mm) to one side of the line, to run kp={kp:.3f} kd={kd:.4f}")
         self.runs += 1
         sensors = list(self.session.hub.sensors)
         columns = [sensors.index(name) for name in self.follow.sensors]

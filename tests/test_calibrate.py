@@ -533,3 +533,27 @@ def test_real_robot_operator_can_refuse_to_start(monkeypatch, robot_file: Path) 
         turns.cmd_turns(args, ask=lambda prompt: "no", open_link=lambda spec, profile: SimLink(sim))
     assert exc.value.exit_code == 130
     assert sim.robot.travel_mm == before and robot_file.read_text() == DEFAULT_PROFILE.read_text()
+
+
+def test_a_hub_that_resets_itself_needs_no_operator() -> None:
+    # Over a real link to a simulated hub (as `trackproof sim serve` offers), its sim_reset routine
+    # puts the robot back between runs: the operator is never asked to.
+    from harness.sim.realtime import add_sim_routines
+
+    sim = Simulation(load_course(DEFAULT_COURSE), NOMINAL, seed=4)
+    add_sim_routines(sim)
+    resets: list[int] = []
+    reset = sim.reset
+    sim.reset = lambda: (resets.append(1), reset())[1]
+    connector = RobotConnector(NOMINAL, "serial:/dev/robot", open_link=lambda spec, profile: SimLink(sim))
+    session = connector.connect()
+    asked: list[str] = []
+    runs = collect_drives(connector, session, [(40.0, 150.0), (40.0, 200.0)], action="follow_line",
+                          measure="probe", ask=lambda prompt: asked.append(prompt) or "",
+                          line_mm=270.5, probe_sensor="outer_left")
+    assert asked == [] and len(resets) == 2 and all(r.usable for r in runs)
+    # A reset routine the hub does not have is named in a clear error.
+    connector.reset_routine = "drive_home"
+    with pytest.raises(InputError, match="no routine 'drive_home'"):
+        collect_drives(connector, session, [(40.0, 200.0)], action="follow_line", measure="probe",
+                       ask=lambda prompt: "", line_mm=270.5, probe_sensor="outer_left")

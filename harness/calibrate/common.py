@@ -61,6 +61,9 @@ def add_robot_options(p: argparse.ArgumentParser, repeat: int) -> None:
     p.add_argument("--write", action="store_true",
                    help="write the recommended values into the --robot profile (with a dated note)")
     p.add_argument("--json", type=Path, metavar="PATH", help="write the full result as JSON here")
+    p.add_argument("--reset", metavar="ROUTINE",
+                   help="a routine on the hub that drives the robot back to the start between runs "
+                        "(default: the simulator re-places it; on a real robot the operator is asked)")
 
 
 def load_robot(args: argparse.Namespace,
@@ -80,7 +83,8 @@ def load_robot(args: argparse.Namespace,
     course = args.course
     if course is None and args.link == "sim":
         course = DEFAULT_COURSE
-    return profile, RobotConnector(profile, args.link, course=course, seed=args.seed, open_link=open_link)
+    return profile, RobotConnector(profile, args.link, course=course, seed=args.seed,
+                                   reset_routine=getattr(args, "reset", None), open_link=open_link)
 
 
 def check_action(action: str, params: dict[str, Any], profile: RobotProfile) -> dict[str, Any]:

@@ -207,15 +207,9 @@ def collect_drives(connector: RobotConnector, session: Session, plan: list[tuple
         run = DriveRun(speed, distance)
         runs.append(run)
         label = f"run {index}/{len(plan)}: {distance:g} mm at {speed:g} %"
-        if sim is not None:
-            sim.reset()
-        else:
-            answer = ask(f"[{label}] put the robot on the start mark; Enter to go, s to skip, q to quit: ")
-            if answer.strip().lower() == "q":
-                raise OperatorStopped("stopped by the operator; nothing written")
-            if answer.strip().lower() == "s":
-                run.note = "skipped by the operator"
-                continue
+        if not connector.place_at_start(session, ask, f"[{label}] put the robot on the start mark", can_skip=True):
+            run.note = "skipped by the operator"
+            continue
         before = truth_snapshot(sim) if sim is not None else None
         record = session.run(action, drive_params(action, profile, distance, speed), telemetry_hz=0)
         truth = truth_report(before, truth_snapshot(sim)) if before is not None and sim is not None else None

@@ -201,11 +201,10 @@ class SquareTest:
 
     def one_square(self, session: Session, direction: str, rep: int) -> SquareRun:
         sim = self.connector.sim
+        self.connector.place_at_start(session, self.ask, f"{direction} square {rep}: put the robot on the start "
+                                      "mark, its axle midpoint on the mark and facing along the first leg")
         if sim is not None:
-            sim.reset()
             start = truth_snapshot(sim)["pose"]
-        else:
-            self._prompt_placement(direction, rep)
         pose = (0.0, 0.0, 0.0)
         from_totals = False
         for action, params in self.plan.steps(direction):
@@ -220,12 +219,6 @@ class SquareTest:
         else:
             actual = self._ask_position(direction, rep)
         return SquareRun(direction, rep, actual, (pose[0], pose[1]), math.degrees(pose[2]), from_totals)
-
-    def _prompt_placement(self, direction: str, rep: int) -> None:
-        answer = self.ask(f"{direction} square {rep}: put the robot on the start mark, its axle midpoint on "
-                          "the mark and facing along the first leg; Enter to drive, q to quit: ")
-        if answer.strip().lower() == "q":
-            raise OperatorStopped("stopped by the operator; nothing concluded or written")
 
     def _ask_position(self, direction: str, rep: int) -> tuple[float, float]:
         while True:
