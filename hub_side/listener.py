@@ -14,7 +14,7 @@ from hub_side import auth, wire
 from hub_side.actions import BUILTINS
 from hub_side.board import ticks_diff
 from hub_side.motion import (DEFAULT_GEOMETRY, GEOMETRY_LIMITS, ParamError, check_params, clip,
-                             is_finite_number, is_whole, shown, travel_mm)
+                             is_finite_number, is_whole, shown, travel_factors, travel_from)
 
 MAX_TELEMETRY_HZ = 500
 DEFAULT_TELEMETRY_HZ = 100
@@ -42,6 +42,7 @@ class ActionContext:
         self.t_us = 0
         self.error_pct = 0.0
         self._listener = listener
+        self._travel = travel_factors(listener.geometry)
         self.enc_start = listener.read_encoders()
         self.heading_start = listener.read_heading()
 
@@ -63,7 +64,7 @@ class ActionContext:
         millimetres per degree when the geometry's wheel_ratio is not 1)."""
         left, right = self._listener.read_encoders()
         start = self.enc_start
-        return travel_mm(left - start[0], right - start[1], self.geometry)
+        return travel_from(left - start[0], right - start[1], self._travel)
 
     def event(self, kind, fields=None):
         self._listener.send_event(kind, fields)

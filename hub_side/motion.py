@@ -74,12 +74,23 @@ def wheel_mm_per_deg(geometry):
     return c_l * mm, c_r * mm
 
 
-def travel_mm(left_deg, right_deg, geometry):
+def travel_factors(geometry):
+    """(left factor, right factor, average wheel's mm per degree) for travel_from: worked out
+    once per action, not on every control tick."""
+    c_l, c_r = wheel_factors(geometry)
+    return c_l, c_r, 1.0 / deg_per_mm(geometry)
+
+
+def travel_from(left_deg, right_deg, factors):
     """Travel of the axle midpoint for these motor degrees: the mean of the two wheels' travel,
     each at its own millimetres per degree. Written as factor times degrees, summed, times the
     average wheel's mm per degree, so equal wheels give exactly (left + right) / 2 * mm."""
-    c_l, c_r = wheel_factors(geometry)
-    return (left_deg * c_l + right_deg * c_r) * 0.5 * (1.0 / deg_per_mm(geometry))
+    c_l, c_r, mm = factors
+    return (left_deg * c_l + right_deg * c_r) * 0.5 * mm
+
+
+def travel_mm(left_deg, right_deg, geometry):
+    return travel_from(left_deg, right_deg, travel_factors(geometry))
 
 
 def spin_motor_deg(angle_deg, geometry):
