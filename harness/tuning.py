@@ -31,7 +31,7 @@ from typing import Any
 import numpy as np
 
 from harness.analysis.oscillation import Oscillation, oscillation_of
-from harness.calibrate.common import add_robot_options, load_robot
+from harness.calibrate.common import add_robot_options, load_robot, whole_number
 from harness.errors import InputError, TrackproofError
 from harness.links import Link, LinkSpec
 from harness.operator import Ask, ask_operator, confirm_real
@@ -601,18 +601,6 @@ def cmd_tune(args: argparse.Namespace, ask: Ask = ask_operator,
     return 0
 
 
-def _zero_or_more(text: str) -> int:
-    """Like harness.calibrate.common.positive_int, but 0 is allowed (0 bisections, or no
-    verification runs, are meaningful here)."""
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"must be 0 or more, got {value}")
-    return value
-
-
 def add_parser(sub: argparse._SubParsersAction) -> None:
     # "resolve": add_robot_options' --course and --repeat are replaced below by tune's own.
     p = sub.add_parser(
@@ -624,7 +612,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
                     "once if it loses the line or swings too far.")
     add_robot_options(p, repeat=5)
     p.add_argument("--course", type=Path, help=f"course for the simulated link (default {TUNING_COURSE.name})")
-    p.add_argument("--verify-runs", "--repeat", type=_zero_or_more, default=5,
+    p.add_argument("--verify-runs", "--repeat", type=whole_number(0), default=5,
                    help="runs per candidate to verify the gains (default 5; 0 skips)")
     p.add_argument("--direction", choices=("forward", "backward"), default="forward",
                    help="which [follow.*] gains to tune (default forward)")
@@ -632,7 +620,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--time-s", type=float, default=5.0, help="length of every run (default 5 s)")
     p.add_argument("--kp-start", type=float, default=0.1, help="first Kp (default 0.1)")
     p.add_argument("--step", type=float, default=1.5, help="factor between Kp steps (default 1.5)")
-    p.add_argument("--bisections", type=_zero_or_more, default=4, help="bisection runs for Ku (default 4)")
+    p.add_argument("--bisections", type=whole_number(0), default=4, help="bisection runs for Ku (default 4)")
     p.add_argument("--limit", type=float, help="guard: stop when |error| passes this on 4 half-cycles in a row "
                                                "(above 0, at most 100; default 45 for a sensor pair, 25 for one "
                                                "sensor)")

@@ -40,14 +40,22 @@ def number_list(low: float, high: float) -> Callable[[str], list[float]]:
     return parse
 
 
-def positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"must be at least 1, got {value}")
-    return value
+def whole_number(low: int) -> Callable[[str], int]:
+    """An argparse type: a whole number of at least low."""
+
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+        if value < low:
+            raise argparse.ArgumentTypeError(f"must be at least {low}, got {value}")
+        return value
+
+    return parse
+
+
+positive_int = whole_number(1)
 
 
 def add_robot_options(p: argparse.ArgumentParser, repeat: int) -> None:
