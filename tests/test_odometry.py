@@ -371,8 +371,10 @@ def test_operator_measured_squares_give_the_same_answer(tmp_path) -> None:
     assert sum("Where" in p for p in asked) == 3  # two squares, one answer asked twice
 
 
-def test_cli_writes_the_track_and_the_profile_then_closes_the_squares(tmp_path, capsys) -> None:
-    left, right = _wheels(1.0)
+def _odometry_cli(tmp_path, wheel_ratio: float):
+    """A course with these wheels and a 115 mm track, a copy of the bundled profile to write
+    into, and a runner of `calibrate odometry` on them that returns its JSON report."""
+    left, right = _wheels(wheel_ratio)
     course = _course(tmp_path, left, right, 115.0)
     robot = tmp_path / "robot.toml"
     robot.write_text((ROOT / "suites" / "practice_robot.toml").read_text())
@@ -382,9 +384,18 @@ def test_cli_writes_the_track_and_the_profile_then_closes_the_squares(tmp_path, 
 
     def run(*extra: str) -> dict:
         args = parser.parse_args(["odometry", "--robot", str(robot), "--course", str(course), "--repeat", "1",
-                                  "--side-mm", "500", "--json", str(report), *extra])
+                                  "--json", str(report), *extra])
         assert args.func(args) == 0
         return json.loads(report.read_text())
+
+    return course, robot, run
+
+
+def test_cli_writes_the_track_and_the_profile_then_closes_the_squares(tmp_path, capsys) -> None:
+    course, robot, cli = _odometry_cli(tmp_path, 1.0)
+
+    def run(*extra: str) -> dict:
+        return cli("--side-mm", "500", *extra)
 
     first = run("--write")
     out = capsys.readouterr().out
@@ -520,17 +531,8 @@ def _end_poses(course: Path, profile) -> dict[str, tuple[float, float, float]]:
 def test_cli_writes_track_and_wheel_ratio_and_unequal_wheels_stop_mattering(tmp_path, capsys) -> None:
     from dataclasses import replace
 
-    left, right = _wheels(1.01)
-    course = _course(tmp_path, left, right, 115.0)
-    robot = tmp_path / "robot.toml"
-    robot.write_text((ROOT / "suites" / "practice_robot.toml").read_text())
-    parser = argparse.ArgumentParser()
-    add_parser(parser.add_subparsers())
-    report = tmp_path / "odometry.json"
-    args = parser.parse_args(["odometry", "--robot", str(robot), "--course", str(course), "--repeat", "1",
-                              "--json", str(report), "--write"])
-    assert args.func(args) == 0
-    first = json.loads(report.read_text())
+    course, robot, run = _odometry_cli(tmp_path, 1.01)
+    first = run("--write")
     assert "wheel_ratio = 1.0" in capsys.readouterr().out  # "Wrote ... wheel_ratio = 1.0098..."
     original = load_profile(ROOT / "suites" / "practice_robot.toml")
     written = load_profile(robot)
