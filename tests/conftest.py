@@ -1,10 +1,13 @@
 from __future__ import annotations
 
+import shutil
+from pathlib import Path
+
 import pytest
 
 from harness.links import SimLink
 from harness.session import Session
-from harness.sim import Simulation
+from harness.sim import SUITES_DIR, Simulation
 
 
 def connect(seed: int = 1) -> tuple[Simulation, Session]:
@@ -18,3 +21,12 @@ def connect(seed: int = 1) -> tuple[Simulation, Session]:
 @pytest.fixture
 def sim_session() -> tuple[Simulation, Session]:
     return connect()
+
+
+def write_suite(tmp_path: Path, body: str, name: str = "suite.toml") -> Path:
+    """A suite file in tmp_path on copies of the bundled robot profile and practice course."""
+    for f in ("practice_robot.toml", "practice_course.toml"):
+        shutil.copy(SUITES_DIR / f, tmp_path / f)
+    path = tmp_path / name
+    path.write_text('robot = "practice_robot.toml"\ncourse = "practice_course.toml"\n' + body)
+    return path

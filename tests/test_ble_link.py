@@ -7,7 +7,6 @@ on the simulated robot in wall-clock time, so these tests take real seconds (abo
 from __future__ import annotations
 
 import gc
-import shutil
 import threading
 import time
 import warnings
@@ -24,8 +23,8 @@ from harness.session import Session
 from harness.store import Store
 from harness.suites import load_suite
 from hub_side import wire
+from conftest import write_suite
 
-SUITES = Path(__file__).resolve().parents[1] / "suites"
 HUB_ADDRESS = "AA:BB:CC:DD:EE:01"
 
 
@@ -278,16 +277,8 @@ def test_a_waiting_read_wakes_up_when_the_peripheral_drops(radio):
 # ------------------------------------------------------------------ the runner over Bluetooth LE
 
 
-def write_suite(tmp_path: Path, body: str) -> Path:
-    for name in ("practice_robot.toml", "practice_course.toml"):
-        shutil.copy(SUITES / name, tmp_path / name)
-    path = tmp_path / "suite.toml"
-    path.write_text('robot = "practice_robot.toml"\ncourse = "practice_course.toml"\nreset = "sim"\n' + body)
-    return path
-
-
 def ble_runner(radio: FakeRadio, tmp_path: Path, body: str, store: Store) -> Runner:
-    suite = load_suite(write_suite(tmp_path, body))
+    suite = load_suite(write_suite(tmp_path, 'reset = "sim"\n' + body))
     return Runner(suite, store, link="ble:kestrel-7", confirm=False,
                   open_link=lambda spec, suite: connect(radio, spec.target))
 

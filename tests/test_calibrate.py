@@ -22,7 +22,6 @@ import tomlkit
 from scipy import optimize, stats
 
 from harness import cli
-from harness.calibrate import add_calibrate_parser
 from harness.calibrate.distance import DriveRun, analyse_distance, collect_drives, nominal_deg_per_mm
 from harness.calibrate.fit import fit_line, fit_through_origin, fit_with_offset_if_needed
 from harness.calibrate.turns import TurnRun, analyse_turns, collect_turns, turn_plan
@@ -408,19 +407,7 @@ def test_turn_fit_needs_two_angles() -> None:
 
 # ------------------------------------------------------------------ the command line
 
-def trackproof(argv: list[str], monkeypatch: pytest.MonkeyPatch) -> int:
-    """cli.main with calibrate registered (as the lead wires it into cli.build_parser; if it is
-    already wired, nothing is added)."""
-    real = cli.build_parser
-
-    def build() -> argparse.ArgumentParser:
-        parser = real()
-        sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
-        if "calibrate" not in sub.choices:
-            add_calibrate_parser(sub)
-        return parser
-
-    monkeypatch.setattr(cli, "build_parser", build)
+def trackproof(argv: list[str]) -> int:
     return cli.main(argv)
 
 
@@ -436,7 +423,7 @@ def test_cli_distance_writes_the_profile(monkeypatch, capsys, robot_file: Path, 
 
     out = tmp_path / "d.json"
     code = trackproof(["calibrate", "distance", "--robot", str(robot_file), "--repeat", "1", "--write",
-                       "--json", str(out)], monkeypatch)
+                       "--json", str(out)])
     assert code == 0
     text = capsys.readouterr().out
     assert "distance_scale = 0.999" in text and "overrun_mm = " in text
@@ -448,7 +435,7 @@ def test_cli_distance_writes_the_profile(monkeypatch, capsys, robot_file: Path, 
 
 
 def test_cli_turns_writes_both_scales(monkeypatch, capsys, robot_file: Path) -> None:
-    code = trackproof(["calibrate", "turns", "--robot", str(robot_file), "--write"], monkeypatch)
+    code = trackproof(["calibrate", "turns", "--robot", str(robot_file), "--write"])
     assert code == 0
     assert "spin_scale = 1.05" in capsys.readouterr().out
     profile = load_profile(robot_file)
@@ -459,28 +446,27 @@ def test_cli_turns_writes_both_scales(monkeypatch, capsys, robot_file: Path) -> 
 
 def test_cli_input_errors(monkeypatch, capsys, robot_file: Path) -> None:
     # --write without --robot: refused before anything moves; the bundled profile is never written.
-    assert trackproof(["calibrate", "distance", "--write"], monkeypatch) == 2
+    assert trackproof(["calibrate", "distance", "--write"]) == 2
     assert "needs --robot PATH" in capsys.readouterr().err
-    assert trackproof(["calibrate", "distance", "--link", "serial:/dev/null-hub", "--measure", "truth"],
-                      monkeypatch) == 2
+    assert trackproof(["calibrate", "distance", "--link", "serial:/dev/null-hub", "--measure", "truth"]) == 2
     assert "only the simulator knows the truth" in capsys.readouterr().err
-    assert trackproof(["calibrate", "turns", "--angles", "90"], monkeypatch) == 2
+    assert trackproof(["calibrate", "turns", "--angles", "90"]) == 2
     assert "two different angles" in capsys.readouterr().err
-    assert trackproof(["calibrate", "distance", "--measure", "probe"], monkeypatch) == 2
+    assert trackproof(["calibrate", "distance", "--measure", "probe"]) == 2
     assert "--line-mm and --probe-sensor" in capsys.readouterr().err
     # Bad options: argparse's own usage error, exit 2.
     for argv in (["calibrate", "distance", "--speeds", "20,fast"], ["calibrate", "distance", "--speeds", "150"],
                  ["calibrate", "turns", "--modes", "spin,wiggle"], ["calibrate", "turns", "--repeat", "0"],
                  ["calibrate", "distance", "--no-such-option"]):
         with pytest.raises(SystemExit) as exc:
-            trackproof(argv, monkeypatch)
+            trackproof(argv)
         assert exc.value.code == 2, argv
     err = capsys.readouterr().err
     assert "'fast'" in err and "wiggle" in err and "150 is outside 0..100" in err
 
 
 def test_cli_link_failure_is_exit_3(monkeypatch, capsys) -> None:
-    assert trackproof(["calibrate", "turns", "--link", "serial:/dev/no-such-hub-port"], monkeypatch) == 3
+    assert trackproof(["calibrate", "turns", "--link", "serial:/dev/no-such-hub-port"]) == 3
     assert "/dev/no-such-hub-port" in capsys.readouterr().err
 
 

@@ -4,7 +4,6 @@ and the rebuild check end to end on the simulator."""
 
 from __future__ import annotations
 
-import argparse
 import json
 import math
 import shutil
@@ -34,7 +33,6 @@ from harness.analysis.compare import (
     welch_power,
     welch_test,
 )
-from harness.compare import add_parser
 from harness.runner import Runner
 from harness.store import Store
 from harness.suites import load_suite
@@ -376,18 +374,7 @@ params = { angle_deg = 45, mode = "pivot_left", speed_pct = 40 }
 '''
 
 
-def compare_cli(argv: list[str], monkeypatch) -> int:
-    """trackproof's own main() with `compare` registered (until cli.py registers it itself)."""
-    build = cli.build_parser
-
-    def with_compare() -> argparse.ArgumentParser:
-        parser = build()
-        sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
-        if "compare" not in sub.choices:
-            add_parser(sub)
-        return parser
-
-    monkeypatch.setattr(cli, "build_parser", with_compare)
+def compare_cli(argv: list[str]) -> int:
     return cli.main(["compare", *argv])
 
 
@@ -420,7 +407,7 @@ def _cases(path: Path) -> dict[str, dict]:
 def test_same_robot_same_seed_is_the_same(sessions, tmp_path, monkeypatch, capsys):
     db, uids = sessions
     out = tmp_path / "same.json"
-    assert compare_cli([uids["first"], uids["again"][:-2], "--db", str(db), "--json", str(out)], monkeypatch) == 0
+    assert compare_cli([uids["first"], uids["again"][:-2], "--db", str(db), "--json", str(out)]) == 0
     data = json.loads(out.read_text())
     assert data["verdict"] == "same" and not data["any_worse"]
     assert {c["name"]: c["verdict"] for c in data["cases"]} == {"spin by encoders": "same",
@@ -444,7 +431,7 @@ def test_same_robot_same_seed_is_the_same(sessions, tmp_path, monkeypatch, capsy
 def test_a_short_spin_scale_is_worse_and_undoing_it_is_better(sessions, tmp_path, monkeypatch, capsys):
     db, uids = sessions
     out = tmp_path / "worse.json"
-    assert compare_cli([uids["first"], uids["rebuilt"], "--db", str(db), "--json", str(out)], monkeypatch) == 1
+    assert compare_cli([uids["first"], uids["rebuilt"], "--db", str(db), "--json", str(out)]) == 1
     spin = _cases(out)["spin by encoders"]
     assert spin["verdict"] == "worse"
     error = next(m for m in spin["metrics"] if m["name"] == "angle_error_deg")
@@ -456,14 +443,14 @@ def test_a_short_spin_scale_is_worse_and_undoing_it_is_better(sessions, tmp_path
     assert _cases(out)["stop past the first junction"]["verdict"] == "same"
     assert "spin by encoders: WORSE" in capsys.readouterr().out
     back = tmp_path / "better.json"
-    assert compare_cli([uids["rebuilt"], uids["first"], "--db", str(db), "--json", str(back)], monkeypatch) == 0
+    assert compare_cli([uids["rebuilt"], uids["first"], "--db", str(db), "--json", str(back)]) == 0
     assert _cases(back)["spin by encoders"]["verdict"] == "better"
 
 
 def test_latest_pairs_the_two_newest_sessions_of_the_latest_suite(sessions, tmp_path, monkeypatch):
     db, uids = sessions
     out = tmp_path / "latest.json"
-    assert compare_cli(["--latest", "--db", str(db), "--json", str(out)], monkeypatch) == 1
+    assert compare_cli(["--latest", "--db", str(db), "--json", str(out)]) == 1
     data = json.loads(out.read_text())
     # The warm-up session in between belongs to another suite and is skipped.
     assert (data["baseline"]["session"], data["current"]["session"]) == (uids["again"], uids["rebuilt"])
@@ -472,7 +459,7 @@ def test_latest_pairs_the_two_newest_sessions_of_the_latest_suite(sessions, tmp_
 def test_cases_in_one_session_only_are_listed_not_compared(sessions, tmp_path, monkeypatch, capsys):
     db, uids = sessions
     out = tmp_path / "other.json"
-    assert compare_cli([uids["first"], uids["other"], "--db", str(db), "--json", str(out)], monkeypatch) == 0
+    assert compare_cli([uids["first"], uids["other"], "--db", str(db), "--json", str(out)]) == 0
     data = json.loads(out.read_text())
     assert [c["name"] for c in data["cases"]] == ["spin by encoders"]
     assert data["only_in_baseline"] == ["stop past the first junction"]
@@ -488,17 +475,17 @@ def test_cases_in_one_session_only_are_listed_not_compared(sessions, tmp_path, m
 
 def test_bad_input_exits_2_and_names_the_file(sessions, tmp_path, monkeypatch, capsys):
     db, uids = sessions
-    assert compare_cli(["nosuch", uids["first"], "--db", str(db)], monkeypatch) == 2
+    assert compare_cli(["nosuch", uids["first"], "--db", str(db)]) == 2
     err = capsys.readouterr().err
     assert str(db) in err and "no session matches 'nosuch'" in err and "Traceback" not in err
-    assert compare_cli([uids["first"], "--db", str(db)], monkeypatch) == 2
+    assert compare_cli([uids["first"], "--db", str(db)]) == 2
     assert "or --latest" in capsys.readouterr().err
-    assert compare_cli([uids["first"], uids["first"], "--db", str(db)], monkeypatch) == 2
+    assert compare_cli([uids["first"], uids["first"], "--db", str(db)]) == 2
     assert "same session" in capsys.readouterr().err
-    assert compare_cli([uids["first"], uids["again"], "--alpha", "0.7", "--db", str(db)], monkeypatch) == 2
+    assert compare_cli([uids["first"], uids["again"], "--alpha", "0.7", "--db", str(db)]) == 2
     assert "--alpha" in capsys.readouterr().err
     missing = tmp_path / "none.sqlite"
-    assert compare_cli(["--latest", "--db", str(missing)], monkeypatch) == 2
+    assert compare_cli(["--latest", "--db", str(missing)]) == 2
     assert str(missing) in capsys.readouterr().err
 
 
@@ -507,13 +494,13 @@ def test_a_json_path_in_a_missing_folder_exits_2_before_comparing(sessions, tmp_
     no exit code that could be mistaken for (or hide) exit 1 for "worse"."""
     db, uids = sessions
     bad = tmp_path / "nonexistent" / "x.json"
-    assert compare_cli([uids["first"], uids["rebuilt"], "--db", str(db), "--json", str(bad)], monkeypatch) == 2
+    assert compare_cli([uids["first"], uids["rebuilt"], "--db", str(db), "--json", str(bad)]) == 2
     shown = capsys.readouterr()
     assert shown.out == "" and str(bad) in shown.err and "does not exist" in shown.err
     assert "Traceback" not in shown.err and not bad.parent.exists()
     # The same comparison with a writable path: the report, the file, and exit 1 for "worse".
     good = tmp_path / "x.json"
-    assert compare_cli([uids["first"], uids["rebuilt"], "--db", str(db), "--json", str(good)], monkeypatch) == 1
+    assert compare_cli([uids["first"], uids["rebuilt"], "--db", str(db), "--json", str(good)]) == 1
     assert "overall: WORSE" in capsys.readouterr().out and json.loads(good.read_text())["any_worse"]
 
 
@@ -524,7 +511,7 @@ def test_latest_needs_two_sessions_of_the_suite(tmp_path, monkeypatch, capsys):
     db = tmp_path / "one.sqlite"
     with Store(db) as store:
         Runner(load_suite(tmp_path / "other.toml"), store, link="sim").run()
-    assert compare_cli(["--latest", "--db", str(db)], monkeypatch) == 2
+    assert compare_cli(["--latest", "--db", str(db)]) == 2
     err = capsys.readouterr().err
     assert str(db) in err and "only one session of suite 'warm-up'" in err
 
@@ -551,7 +538,7 @@ def test_interrupted_runs_are_not_counted_and_a_case_without_runs_cannot_tell(tm
         monkeypatch.setattr(Session, "run", real_run)
         assert cut.status == "aborted" and list(store.runs(cut.uid)["status"]) == ["pass", "pass", "aborted"]
     out = tmp_path / "cut.json"
-    assert compare_cli([full, cut.uid, "--db", str(db), "--json", str(out)], monkeypatch) == 0
+    assert compare_cli([full, cut.uid, "--db", str(db), "--json", str(out)]) == 0
     cases = _cases(out)
     assert cases["spin by encoders"]["runs"] == {"baseline": 3, "current": 2}
     assert cases["quick pivot"]["verdict"] == "not enough runs" and cases["quick pivot"]["metrics"] == []

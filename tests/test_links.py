@@ -6,7 +6,6 @@ from __future__ import annotations
 import hashlib
 import hmac
 import random
-import shutil
 from pathlib import Path
 
 import pytest
@@ -26,7 +25,7 @@ from harness.store import Store
 from harness.suites import load_suite
 from hub_side import auth, wire
 
-from conftest import connect
+from conftest import connect, write_suite
 
 # ------------------------------------------------------------------ link strings
 
@@ -374,14 +373,6 @@ def test_a_closed_pseudo_terminal_is_a_lost_link():
 # ------------------------------------------------------------------ the runner on faulty and real links
 
 
-def _suite(tmp_path: Path, body: str) -> Path:
-    for f in ("practice_robot.toml", "practice_course.toml"):
-        shutil.copy(SUITES_DIR / f, tmp_path / f)
-    path = tmp_path / "suite.toml"
-    path.write_text('robot = "practice_robot.toml"\ncourse = "practice_course.toml"\nseed = 4\n' + body)
-    return path
-
-
 def _count_starts(sim: Simulation) -> list[str]:
     """Every action the hub really started, in order (a retransmitted start must not add one)."""
     started: list[str] = []
@@ -426,7 +417,7 @@ def test_demo_suite_at_five_percent_frame_faults_keeps_every_run(tmp_path):
 def test_per_byte_faults_lose_the_link_with_exit_code_3(tmp_path, capsys):
     from harness.cli import main
 
-    suite = _suite(tmp_path, '[[cases]]\nname = "t"\naction = "turn"\nparams = { angle_deg = 90 }\nrepeat = 3\n')
+    suite = write_suite(tmp_path, 'seed = 4\n[[cases]]\nname = "t"\naction = "turn"\nparams = { angle_deg = 90 }\nrepeat = 3\n')
     db = tmp_path / "r.sqlite"
     code = main(["run", str(suite), "--db", str(db), "--link-faults", "corrupt=0.05,drop=0.02,per=byte"])
     err = capsys.readouterr().err
@@ -435,7 +426,7 @@ def test_per_byte_faults_lose_the_link_with_exit_code_3(tmp_path, capsys):
 
 
 def test_runner_reconnects_after_a_lost_link_and_goes_on(tmp_path):
-    suite = load_suite(_suite(tmp_path, '[[cases]]\nname = "t"\naction = "turn"\nreset = "sim"\n'
+    suite = load_suite(write_suite(tmp_path, 'seed = 4\n[[cases]]\nname = "t"\naction = "turn"\nreset = "sim"\n'
                                         'params = { angle_deg = 90, using = "gyro" }\nrepeat = 6\n'))
     db = tmp_path / "r.sqlite"
     with Store(db) as store:
@@ -450,7 +441,7 @@ def test_runner_reconnects_after_a_lost_link_and_goes_on(tmp_path):
 
 
 def test_runner_over_serial_to_sim_serve_resets_through_the_hub(tmp_path):
-    suite = load_suite(_suite(tmp_path, '[[cases]]\nname = "t"\naction = "turn"\nreset = "sim"\n'
+    suite = load_suite(write_suite(tmp_path, 'seed = 4\n[[cases]]\nname = "t"\naction = "turn"\nreset = "sim"\n'
                                         'params = { angle_deg = 90, using = "gyro" }\nrepeat = 2\n'
                                         'expect = { angle_error_deg = { mean_abs_max = 4 } }\n'))
     sim = Simulation.from_files(seed=8)
@@ -462,7 +453,7 @@ def test_runner_over_serial_to_sim_serve_resets_through_the_hub(tmp_path):
 
 
 def test_real_hardware_waits_for_the_operators_yes(tmp_path):
-    suite = load_suite(_suite(tmp_path, '[[cases]]\nname = "t"\naction = "turn"\nreset = "operator"\n'
+    suite = load_suite(write_suite(tmp_path, 'seed = 4\n[[cases]]\nname = "t"\naction = "turn"\nreset = "operator"\n'
                                         'params = { angle_deg = 90 }\nrepeat = 1\n'))
     sim = Simulation.from_files(seed=8)
     sim.board.capabilities = {"gyro": True}  # looks like real hardware to the host
@@ -505,7 +496,7 @@ def test_sim_serve_gives_a_serial_link_any_suite_can_use(tmp_path, capsys):
             assert line, server.stderr.read()
             if line.strip().startswith("serial:"):
                 link = line.strip()
-        suite = _suite(tmp_path, '[[cases]]\nname = "t"\naction = "turn"\nreset = "sim"\n'
+        suite = write_suite(tmp_path, 'seed = 4\n[[cases]]\nname = "t"\naction = "turn"\nreset = "sim"\n'
                                  'params = { angle_deg = 90, using = "gyro" }\nrepeat = 2\n')
         assert main(["run", str(suite), "--link", link, "--db", str(tmp_path / "r.sqlite")]) == 0
         assert "1 of 1 cases passed" in capsys.readouterr().out

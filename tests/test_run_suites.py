@@ -3,24 +3,14 @@
 from __future__ import annotations
 
 import json
-import shutil
 import xml.etree.ElementTree as ET
-from pathlib import Path
 
 import pytest
 
 from harness.cli import main
 from harness.store import Store
+from conftest import write_suite
 
-SUITES = Path(__file__).resolve().parents[1] / "suites"
-
-
-def write_suite(tmp_path: Path, body: str, name: str = "suite.toml") -> Path:
-    for f in ("practice_robot.toml", "practice_course.toml"):
-        shutil.copy(SUITES / f, tmp_path / f)
-    path = tmp_path / name
-    path.write_text('robot = "practice_robot.toml"\ncourse = "practice_course.toml"\n' + body)
-    return path
 
 
 LOOSE_AND_TIGHT = '''
