@@ -11,7 +11,6 @@ import sys
 if sys.implementation.name == "micropython":
     sys.path.insert(0, "/lib/hub_fakes")
 
-import json
 import time
 
 import bluetooth
@@ -23,16 +22,14 @@ from hub_side.boards.machine_board import MachineBoard
 from hub_side.listener import Listener
 from hub_side.usb_serial import UsbSerialLink
 
+try:
+    from exercise import canon  # CPython: this file's folder is sys.path[0]
+except ImportError:
+    from hub_script.exercise import canon  # MicroPython: copied to /lib/hub_script
+
 MICROPYTHON = sys.implementation.name == "micropython"
 
 
-def canon(obj):
-    """JSON with sorted keys (MicroPython's json.dumps has no sort_keys; dicts are unordered)."""
-    if isinstance(obj, dict):
-        return "{" + ", ".join(json.dumps(k) + ": " + canon(obj[k]) for k in sorted(obj)) + "}"
-    if isinstance(obj, (list, tuple)):
-        return "[" + ", ".join(canon(v) for v in obj) + "]"
-    return json.dumps(obj)
 
 
 def out(name, value):
