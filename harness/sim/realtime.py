@@ -15,7 +15,7 @@ from collections.abc import Callable
 
 from harness.sim import Simulation
 
-DEFAULT_TX_BUFFER = 2048  # bytes the hub can queue for the link (common for a UART or USB CDC buffer)
+DEFAULT_TX_BUFFER_BYTES = 2048  # what the hub can queue for the link (common for a UART or USB CDC buffer)
 _LOOP_S = 0.0005
 
 
@@ -34,11 +34,11 @@ def add_sim_routines(sim: Simulation) -> None:
 
 class RealtimeHub:
     def __init__(self, sim: Simulation, send: Callable[[bytes], int], *, baud: int | None = None,
-                 tx_buffer: int = DEFAULT_TX_BUFFER) -> None:
+                 tx_buffer_bytes: int = DEFAULT_TX_BUFFER_BYTES) -> None:
         self.sim = sim
         self.send = send
         self.baud = baud
-        sim.board.tx_capacity = tx_buffer
+        sim.board.tx_capacity_bytes = tx_buffer_bytes
         self._incoming = bytearray()
         self._lock = threading.Lock()
         self._stop = threading.Event()

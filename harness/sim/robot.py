@@ -161,7 +161,7 @@ class SimBoard(Board):
         self.sensor_names = sensor_names
         self.rx = bytearray()  # host -> hub
         self.tx = bytearray()  # hub -> host
-        self.tx_capacity: int | None = None  # unbounded in virtual time; set by a real-time link
+        self.tx_capacity_bytes: int | None = None  # unbounded in virtual time; set by a real-time link
 
     def ticks_us(self) -> int:
         return self.robot.t_us
@@ -195,4 +195,4 @@ class SimBoard(Board):
         self.tx.extend(data)
 
     def link_room(self) -> int:
-        return Board.link_room(self) if self.tx_capacity is None else self.tx_capacity - len(self.tx)
+        return Board.link_room(self) if self.tx_capacity_bytes is None else self.tx_capacity_bytes - len(self.tx)
