@@ -256,19 +256,25 @@ class Listener:
             self._finish("stalled", None)
 
     def _sample(self):
-        ctx = self.contexts[-1]
         root = self.contexts[0]
         left, right = self.read_encoders()
         refl = self._refl
-        names = self.sensor_names
-        read = self.read_reflectance
-        for i in range(len(names)):
-            refl[i] = min(255, max(0, int(read(names[i]))))
+        seen = self._refl_now  # read_reflectance inlined: this runs for every sample
+        board = self.board
+        i = 0
+        for name in self.sensor_names:
+            value = seen.get(name)
+            if value is None:
+                value = seen[name] = board.reflectance_pct(name)
+            value = int(value)
+            refl[i] = value if 0 <= value <= 255 else min(255, max(0, value))
+            i += 1
         batch = self._batch
+        power = self.power
         batch.add(self.t_us, left - root.enc_start[0], right - root.enc_start[1], self.read_heading(),
-                  ctx.error_pct, self.power[0], self.power[1], refl)
+                  self.contexts[-1].error_pct, power[0], power[1], refl)
         self._sample_index += 1
-        if batch.full() or batch.span_us(self.t_us) >= _BATCH_MAX_SPAN_US:
+        if batch.count >= batch.max_samples or self.t_us - batch.t0_us >= _BATCH_MAX_SPAN_US:
             self._flush_telemetry()
 
     def _flush_telemetry(self):

@@ -182,9 +182,11 @@ try:
     print("crc_hqx present")
 except ImportError:
     print("crc_hqx absent")
-print("crc16_is_table", wire.crc16 is wire.crc16_table)
-print("check %04x" % wire.crc16_table(b"123456789"))
+print("crc16_is_pairs", wire.crc16 is wire.crc16_pairs)
+print("check %04x %04x" % (wire.crc16_pairs(b"123456789"), wire.crc16_table(b"123456789")))
 for case in CASES:
+    print("crc %04x %04x %04x" % (wire.crc16_pairs(case), wire.crc16_pairs(memoryview(case)[1:]),
+                                  wire.crc16_table(case)))
     enc = wire.cobs_encode(case)
     assert b"\\x00" not in enc
     assert wire.cobs_decode(enc) == case, case
@@ -198,12 +200,16 @@ assert wire.decode_frame(frame[:-1]) == (wire.TELEMETRY, 0x1234, bytes(range(256
 def test_codec_crc_and_cobs_under_micropython() -> None:
     script = "CASES = %r\n%s" % (COBS_CASES, CODEC_SCRIPT)
     lines = run_micropython(script, [HUB_DIR]).splitlines()
-    assert lines[0] == "crc_hqx absent"  # so the table version below is the one the hub uses
-    assert lines[1] == "crc16_is_table True"
+    assert lines[0] == "crc_hqx absent"  # so the pair-table version below is the one the hub uses
+    assert lines[1] == "crc16_is_pairs True"
     # CRC-16/IBM-3740 check value for "123456789": 0x29B1, from Greg Cook's Catalogue of
     # parametrised CRC algorithms (https://reveng.sourceforge.io/crc-catalogue/16.htm).
-    assert lines[2] == "check 29b1"
-    # Identical bytes to CPython's codec (which tests/test_wire.py checks against references).
-    expected = ["cobs " + wire.cobs_encode(case).hex() for case in COBS_CASES]
+    assert lines[2] == "check 29b1 29b1"
+    # Identical CRCs and bytes to CPython's codec (which tests/test_wire.py checks against
+    # references); the cases have odd and even lengths.
+    expected = []
+    for case in COBS_CASES:
+        expected.append("crc %04x %04x %04x" % (wire.crc16(case), wire.crc16(case[1:]), wire.crc16(case)))
+        expected.append("cobs " + wire.cobs_encode(case).hex())
     assert lines[3:-1] == expected
     assert lines[-1] == "frame " + wire.encode_frame(wire.TELEMETRY, 0x1234, bytes(range(256))).hex()
