@@ -6,6 +6,8 @@
     wheel_ratio                               # right over left wheel diameter, UMBmark's E_d
                                               # (default 1.0, 0.9 to 1.1); wheel_diameter_mm
                                               # is then their average
+    spin_offset_deg, pivot_offset_deg         # degrees encoder turns go on past their target
+                                              # (the coast; default 0, -30 to 30)
     [sensors.NAME] forward_mm, left_mm        # reflectance sensors in the robot frame
     [follow.forward] / [follow.backward]      # sensors (pair listed left first, or one edge
                                               # sensor), edge, kp, kd, speed_pct
@@ -52,6 +54,8 @@ class RobotProfile:
     spin_scale: float = 1.0
     pivot_scale: float = 1.0
     wheel_ratio: float = 1.0  # D_right / D_left around wheel_diameter_mm (calibrate odometry)
+    spin_offset_deg: float = 0.0  # encoder turns aim this much short (calibrate turns)
+    pivot_offset_deg: float = 0.0
     watchdog_ms: int = 500
     baud: int = 115200  # serial links; a link string's @BAUD wins
     secret: str = ""  # shared with the hub: it refuses hosts that cannot prove it
@@ -60,8 +64,9 @@ class RobotProfile:
     source: str = ""
 
     def geometry(self) -> dict[str, float]:
-        """What the hub needs to turn millimetres and degrees into motor degrees."""
-        return {
+        """What the hub needs to turn millimetres and degrees into motor degrees. Turn offsets go
+        only when set, so a profile without them still suits a hub from before they existed."""
+        out = {
             "wheel_diameter_mm": self.wheel_diameter_mm,
             "track_mm": self.track_mm,
             "distance_scale": self.distance_scale,
@@ -69,6 +74,10 @@ class RobotProfile:
             "pivot_scale": self.pivot_scale,
             "wheel_ratio": self.wheel_ratio,
         }
+        for key in ("spin_offset_deg", "pivot_offset_deg"):
+            if getattr(self, key):
+                out[key] = getattr(self, key)
+        return out
 
     def action_defaults(self, action: str, params: dict[str, Any]) -> dict[str, Any]:
         """Parameters for an action with the profile's settings filled in where not given."""
@@ -106,6 +115,8 @@ def profile_from_table(t: Table) -> RobotProfile:
     track = t.num("track_mm", low=GEOMETRY_LIMITS["track_mm"][0], high=GEOMETRY_LIMITS["track_mm"][1])
     scales = {k: t.num(k, 1.0, low=GEOMETRY_LIMITS[k][0], high=GEOMETRY_LIMITS[k][1])
               for k in ("distance_scale", "spin_scale", "pivot_scale", "wheel_ratio")}
+    scales.update({k: t.num(k, 0.0, low=GEOMETRY_LIMITS[k][0], high=GEOMETRY_LIMITS[k][1])
+                   for k in ("spin_offset_deg", "pivot_offset_deg")})
     sensors_t = t.table("sensors")
     sensors: dict[str, SensorPlace] = {}
     for name in sensors_t.data:

@@ -15,6 +15,7 @@ from hub_side.motion import (
     pivot_wheel_deg,
     ramp_speed_pct,
     spin_wheel_deg,
+    turn_aim_deg,
 )
 
 _SPEED = ("num", 40.0, 0.0, 100.0)
@@ -214,9 +215,11 @@ def follow_line(ctx, p):
 
 
 def turn(ctx, p):
-    angle = p["angle_deg"]
     mode = p["mode"]
-    cw = 1 if angle >= 0 else -1
+    use_gyro = p["using"] == "gyro"
+    cw = 1 if p["angle_deg"] >= 0 else -1
+    # By the encoders, aim short by the profile's offset (the coast after the motors stop).
+    angle = p["angle_deg"] if use_gyro else turn_aim_deg(p["angle_deg"], mode, ctx.geometry)
     # Wheel directions for a clockwise turn; a counter-clockwise turn reverses both. Each moving
     # wheel has its own motor-degree target (unequal wheels: the smaller one turns more).
     if mode == "spin":
@@ -240,7 +243,6 @@ def turn(ctx, p):
     # Power in proportion to each wheel's target, so both wheels finish together.
     power_left = left_dir / weight_left
     power_right = right_dir / weight_right
-    use_gyro = p["using"] == "gyro"
     if use_gyro:
         target = abs(angle)
     # The slow-down window in the same unit as progress.

@@ -10,6 +10,10 @@ c_L = 2 / (E_d + 1) and c_R = 2 / (1/E_d + 1) (J. Borenstein, L. Feng, "Measurem
 of Systematic Odometry Errors in Mobile Robots", IEEE Trans. Robotics and Automation 12(6), 1996;
 REFERENCES.md section 2): c_R / c_L = E_d and (c_L + c_R) / 2 = 1. With E_d = 1.0 both factors
 are exactly 1.0 and every helper below gives, bit for bit, what the equal-wheel formulas give.
+
+spin_offset_deg and pivot_offset_deg are the degrees a turn by the encoders goes on past its
+target, mostly the coast after the motors stop (measured by `trackproof calibrate turns`); such a
+turn aims that much short of the angle asked (turn_aim_deg). Both 0.0 by default.
 """
 
 import math
@@ -21,6 +25,8 @@ DEFAULT_GEOMETRY = {
     "spin_scale": 1.0,
     "pivot_scale": 1.0,
     "wheel_ratio": 1.0,
+    "spin_offset_deg": 0.0,
+    "pivot_offset_deg": 0.0,
 }
 
 
@@ -32,6 +38,8 @@ GEOMETRY_LIMITS = {
     "spin_scale": (0.5, 2.0),
     "pivot_scale": (0.5, 2.0),
     "wheel_ratio": (0.9, 1.1),
+    "spin_offset_deg": (-30.0, 30.0),
+    "pivot_offset_deg": (-30.0, 30.0),
 }
 _SHOWN_CHARS = 40  # host text echoed in an error is cut here, so a refusal always fits its frame
 
@@ -117,6 +125,14 @@ def encoder_heading_deg(left_deg, right_deg, geometry):
         (left_deg * c_l - right_deg * c_r) * geometry["wheel_diameter_mm"]
         / (2.0 * geometry["track_mm"] * geometry["spin_scale"])
     )
+
+
+def turn_aim_deg(angle_deg, mode, geometry):
+    """The signed angle a turn by the encoders aims for, so that with its offset it lands on
+    angle_deg; never past zero (an offset larger than the angle is no turn at all)."""
+    offset = geometry.get("spin_offset_deg" if mode == "spin" else "pivot_offset_deg", 0.0)
+    aim = max(0.0, abs(angle_deg) - offset)
+    return aim if angle_deg >= 0 else -aim
 
 
 def pivot_motor_deg(angle_deg, geometry):

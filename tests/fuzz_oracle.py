@@ -41,7 +41,8 @@ UNKNOWN_TYPES = tuple(t for t in range(256) if t not in wire.MESSAGE_NAMES)
 KNOWN_ACTIONS = ("follow_line", "turn", "drive_straight", "probe_edge", "stop")
 # The ranges the host's robot profile allows (harness/profile.py), written out on their own.
 GEOMETRY_LIMITS = {"wheel_diameter_mm": (1.0, 1000.0), "track_mm": (1.0, 2000.0), "distance_scale": (0.5, 2.0),
-                   "spin_scale": (0.5, 2.0), "pivot_scale": (0.5, 2.0), "wheel_ratio": (0.9, 1.1)}
+                   "spin_scale": (0.5, 2.0), "pivot_scale": (0.5, 2.0), "wheel_ratio": (0.9, 1.1),
+                   "spin_offset_deg": (-30.0, 30.0), "pivot_offset_deg": (-30.0, 30.0)}
 GEOMETRY_KEYS = tuple(sorted(GEOMETRY_LIMITS))
 WATCHDOG_RANGE_MS = (50, 60000)
 MAX_TELEMETRY_HZ = 500

@@ -383,8 +383,10 @@ def test_turns_recover_the_practice_robot_and_it_then_turns_better() -> None:
     scaled = _turn_errors(better, 90.0)
     assert np.mean(np.abs(nominal)) > 2.0
     assert np.mean(np.abs(scaled)) < np.mean(np.abs(nominal))
-    # Asking for 90 minus the fitted offset lands on 90.
-    assert np.mean(np.abs(_turn_errors(better, 90.0 - spin.offset_deg))) < 0.6
+    # With the recommended offset in the profile too, the hub aims short and a 90 lands on 90.
+    assert spin.writes_offset and spin.recommended_offset_deg == spin.offset_deg  # the profile had none
+    both = dataclasses.replace(better, spin_offset_deg=round(spin.recommended_offset_deg, 2))
+    assert np.mean(np.abs(_turn_errors(both, 90.0))) < 0.6
 
 
 def test_turns_on_worn_wheels(worn_course: Path) -> None:
@@ -397,6 +399,29 @@ def test_turns_on_worn_wheels(worn_course: Path) -> None:
     want = true_scales(load_course(worn_course).truth)  # spin: 0.5 * 118 / (57.2 * 0.95) = 1.0858
     assert cal.scales["spin"].scale == pytest.approx(want["spin_scale"], rel=5e-3)
     assert cal.scales["pivot"].scale == pytest.approx(want["pivot_scale"], rel=5e-3)
+
+
+def test_recommended_offset_allows_for_the_offset_the_hub_already_applied() -> None:
+    # A robot that coasts 2.0 deg and turns 0.95 of what it is asked, calibrated while its
+    # profile already aims 1.5 deg short: each turn is aimed at A - 1.5, so it measures
+    # 2.0 + 0.95 * (A - 1.5). The fit sees intercept 2.0 - 0.95 * 1.5 = 0.575 and slope 0.95; the
+    # coast to put in the profile is 0.575 + 0.95 * 1.5 = 2.0 again (common practice: the
+    # algebra of the fitted line, no published source).
+    jitter = [0.02, -0.03, 0.01, -0.01, 0.03, -0.02]
+    runs = [TurnRun("spin", sign * angle, gyro_deg=sign * (2.0 + 0.95 * (angle - 1.5) + jitter[k % 6]))
+            for k, (angle, sign) in enumerate((a, s) for a in (45.0, 90.0, 180.0) for s in (1, -1, 1, -1))]
+    spin = analyse_turns(runs, 1.0, 1.0, spin_offset_deg=1.5).scales["spin"]
+    assert spin.offset_significant and spin.offset_deg == pytest.approx(0.575, abs=0.05)
+    assert spin.slope == pytest.approx(0.95, abs=1e-3)
+    assert spin.recommended_offset_deg == pytest.approx(2.0, abs=0.05)
+    assert spin.as_dict()["recommended_offset_deg"] == spin.recommended_offset_deg
+    # A profile offset that is right leaves no intercept to find, and is kept (times the slope).
+    runs = [TurnRun("spin", sign * angle, gyro_deg=sign * (angle + jitter[k % 6]))
+            for k, (angle, sign) in enumerate((a, s) for a in (45.0, 90.0, 180.0) for s in (1, -1))]
+    spin = analyse_turns(runs, 1.0, 1.0, spin_offset_deg=1.5).scales["spin"]
+    assert not spin.offset_significant and spin.writes_offset
+    assert spin.recommended_offset_deg == pytest.approx(1.5 * spin.slope)
+    assert not analyse_turns(runs, 1.0, 1.0).scales["spin"].writes_offset
 
 
 def test_turn_fit_needs_two_angles() -> None:
@@ -434,14 +459,25 @@ def test_cli_distance_writes_the_profile(monkeypatch, capsys, robot_file: Path, 
     assert f"distance_scale 1.0 -> {written}: trackproof calibrate distance, 9 runs" in robot_file.read_text()
 
 
-def test_cli_turns_writes_both_scales(monkeypatch, capsys, robot_file: Path) -> None:
+def test_cli_turns_writes_both_scales_and_the_coast(monkeypatch, capsys, robot_file: Path) -> None:
     code = trackproof(["calibrate", "turns", "--robot", str(robot_file), "--write"])
     assert code == 0
-    assert "spin_scale = 1.05" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert "spin_scale = 1.05" in out and "spin_offset_deg = +1." in out
     profile = load_profile(robot_file)
     assert profile.spin_scale == pytest.approx(1.053, rel=5e-3)
     assert profile.pivot_scale == pytest.approx(1.053, rel=5e-3)
     assert profile.distance_scale == 1.0
+    # The spin's coast (about 1.9 deg in the simulator) goes in too, with the speed in the note.
+    assert 1.0 < profile.spin_offset_deg < 3.0
+    assert "spin_offset_deg added, " in robot_file.read_text() and "at 40 %" in robot_file.read_text()
+    # Calibrating again with those values: the scale and the coast stay put (the hub now aims
+    # short by the coast, and the fit allows for it).
+    first = profile
+    assert trackproof(["calibrate", "turns", "--robot", str(robot_file), "--write", "--seed", "9"]) == 0
+    again = load_profile(robot_file)
+    assert again.spin_scale == pytest.approx(first.spin_scale, rel=3e-3)
+    assert again.spin_offset_deg == pytest.approx(first.spin_offset_deg, abs=0.5)
 
 
 def test_cli_input_errors(monkeypatch, capsys, robot_file: Path) -> None:

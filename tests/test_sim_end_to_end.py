@@ -10,7 +10,7 @@ from conftest import connect
 from harness.errors import HubRefused, LinkError, ProtocolError
 from harness.links import SimLink
 from harness.session import Session
-from harness.sim import truth_report, truth_snapshot
+from harness.sim import Simulation, truth_report, truth_snapshot
 from hub_side import wire
 
 
@@ -71,6 +71,38 @@ def test_spin_turn_90_ends_within_a_few_degrees(using, tolerance_deg):
     assert abs(truth["travel_mm"]) < 3.0
     # The gyro reports what really happened, to within its noise and drift.
     assert record.result["heading_change_deg"] == pytest.approx(truth["heading_change_deg"], abs=0.6)
+
+
+def test_turn_offsets_aim_encoder_turns_short_and_leave_gyro_turns_alone():
+    def turned(geometry_extra, angle, mode="spin", using="encoders"):
+        sim = Simulation.from_files(seed=2)
+        session = Session(SimLink(sim), watchdog_ms=500, session_id="offset")
+        session.hello(geometry={**sim.profile.geometry(), **geometry_extra})
+        before = truth_snapshot(sim)
+        record = session.run("turn", {"angle_deg": angle, "mode": mode, "using": using})
+        assert record.status == "done"
+        return record, truth_report(before, truth_snapshot(sim))["heading_change_deg"]
+
+    plain, plain_deg = turned({}, 90.0)
+    short, short_deg = turned({"spin_offset_deg": 3.0}, 90.0)
+    # The encoder target shrinks by the offset's share of the angle (87 of 90 degrees), and the
+    # robot turns about 3 degrees less: 2.85 at the practice robot's true spin scale (it turns
+    # 1 / 1.053 of what the profile expects), give or take one turn's slip and noise.
+    assert short.result["target_deg"] == pytest.approx(plain.result["target_deg"] * 87.0 / 90.0, rel=1e-3)
+    assert plain_deg - short_deg == pytest.approx(3.0 / 1.053, abs=0.75)
+    # Counter-clockwise alike; a pivot takes pivot_offset_deg and ignores spin_offset_deg.
+    _, ccw_deg = turned({"spin_offset_deg": 3.0}, -90.0)
+    assert ccw_deg == pytest.approx(-short_deg, abs=0.5)
+    pivot, _ = turned({"spin_offset_deg": 3.0}, 90.0, mode="pivot_right")
+    pivot_short, _ = turned({"pivot_offset_deg": 3.0}, 90.0, mode="pivot_right")
+    assert pivot_short.result["target_deg"] == pytest.approx(pivot.result["target_deg"] * 87.0 / 90.0, rel=1e-3)
+    # An offset as large as the angle leaves nothing to turn.
+    none, none_deg = turned({"spin_offset_deg": 5.0}, 4.0)
+    assert none.result["target_deg"] == 0.0 and abs(none_deg) < 0.2
+    # Turns by the gyro stop on the gyro's own reading: the offset is for encoder turns only.
+    gyro, _ = turned({}, 90.0, using="gyro")
+    gyro_offset, _ = turned({"spin_offset_deg": 3.0}, 90.0, using="gyro")
+    assert gyro_offset.result["target_deg"] == gyro.result["target_deg"] == 90.0
 
 
 def test_pivot_turns_about_the_stopped_wheel():

@@ -12,7 +12,9 @@ against commanded, by least squares with t-based 95 % intervals:
 The intercept a is kept when its t-test says it is significant (p < 0.05): a fixed number of
 degrees every turn adds whatever its size, typically the coast after the motors stop. Otherwise
 the line goes through the origin. The recommended scale is s0 / b (its interval is s0 over the
-ends of b's), and with it a turn of A ends near A + a: ask for A - a to land on A.
+ends of b's), and with it a turn of A ends near A + a. The profile's <group>_offset_deg o0 makes
+the hub aim short by o0, so the turns measured here were aimed at A - o0 and a = c - b * o0 for a
+coast of c degrees: the recommended offset is c = a + b * o0, with which a turn of A lands on A.
 
 Pivots about the left and about the right wheel are fitted apart (wheels of unequal size make
 them differ) and share the profile's one pivot_scale: s0 over the mean of their two slopes, with
@@ -89,6 +91,17 @@ class ScaleFit:
     offset_deg: float  # mean of the parts' intercepts (0 for a part without one)
     scale: float
     scale_ci: tuple[float, float] | None  # None if the slope's interval reaches 0
+    profile_offset_deg: float = 0.0  # what the hub aimed short by while these turns ran
+
+    @property
+    def recommended_offset_deg(self) -> float:
+        """The coast a profile offset should hold: the intercept plus what the hub already took off."""
+        return self.offset_deg + self.slope * self.profile_offset_deg
+
+    @property
+    def writes_offset(self) -> bool:
+        """An offset goes into the profile when the data ask for one or the profile has one."""
+        return self.offset_significant or self.profile_offset_deg != 0.0
 
     @property
     def modes(self) -> tuple[str, ...]:
@@ -107,6 +120,8 @@ class ScaleFit:
                 "scale": self.scale, "scale_ci": list(self.scale_ci) if self.scale_ci else None,
                 "slope": self.slope, "slope_se": self.slope_se, "slope_ci": list(self.slope_ci),
                 "dof": self.dof, "offset_deg": self.offset_deg, "offset_significant": self.offset_significant,
+                "profile_offset_deg": self.profile_offset_deg,
+                "recommended_offset_deg": self.recommended_offset_deg,
                 "parts": [p.as_dict() for p in self.parts]}
 
 
@@ -155,7 +170,7 @@ def fit_mode(mode: str, runs: list[TurnRun], alpha: float = 0.05) -> ModeFit:
     return ModeFit(mode, chosen, with_intercept, used)
 
 
-def combine(name: str, parts: list[ModeFit], profile_scale: float) -> ScaleFit:
+def combine(name: str, parts: list[ModeFit], profile_scale: float, profile_offset: float = 0.0) -> ScaleFit:
     """The mean of the parts' slopes, its standard error from theirs (independent turns), and
     Welch-Satterthwaite degrees of freedom for its t interval."""
     from scipy.stats import t
@@ -176,18 +191,21 @@ def combine(name: str, parts: list[ModeFit], profile_scale: float) -> ScaleFit:
                               "check the gyro's sign and the motor wiring")
     offset = sum(p.fit.intercept for p in parts) / k
     ci = (profile_scale / high, profile_scale / low) if low > 0 else None
-    return ScaleFit(name, profile_scale, parts, slope, se, dof, (low, high), offset, profile_scale / slope, ci)
+    return ScaleFit(name, profile_scale, parts, slope, se, dof, (low, high), offset, profile_scale / slope, ci,
+                    profile_offset)
 
 
-def analyse_turns(runs: list[TurnRun], spin_scale: float, pivot_scale: float) -> TurnCalibration:
+def analyse_turns(runs: list[TurnRun], spin_scale: float, pivot_scale: float,
+                  spin_offset_deg: float = 0.0, pivot_offset_deg: float = 0.0) -> TurnCalibration:
+    """Fits per profile scale; the scales and offsets are the profile's while the turns ran."""
     present = {r.mode for r in runs if r.usable}
-    profile_scales = {"spin": spin_scale, "pivot": pivot_scale}
+    profile = {"spin": (spin_scale, spin_offset_deg), "pivot": (pivot_scale, pivot_offset_deg)}
     fits = {mode: fit_mode(mode, runs) for mode in MODES if mode in present}
-    scales = {group: combine(group, [fits[m] for m in modes if m in fits], profile_scales[group])
+    scales = {group: combine(group, [fits[m] for m in modes if m in fits], *profile[group])
               for group, modes in GROUPS.items() if present & set(modes)}
     per_mode = {}
     if {"pivot_left", "pivot_right"} <= present:
-        per_mode = {mode: combine(mode, [fits[mode]], pivot_scale) for mode in ("pivot_left", "pivot_right")}
+        per_mode = {mode: combine(mode, [fits[mode]], *profile["pivot"]) for mode in ("pivot_left", "pivot_right")}
     return TurnCalibration(scales, per_mode, runs)
 
 
@@ -241,11 +259,10 @@ def print_turns(cal: TurnCalibration, head: str) -> None:
                   f"({kept})")
         if len(sf.parts) > 1:
             print(f"    pooled: mean slope {sf.slope:.5f} {fmt_ci(sf.slope_ci, 5)}, {sf.dof:.1f} dof")
-        if sf.offset_significant:
-            more_less = "less" if sf.offset_deg > 0 else "more"
-            print(f"    with it, turns end about {sf.offset_deg:+.2f} deg past their target (e.g. the coast after "
-                  f"the motors stop): ask for {abs(sf.offset_deg):.2f} deg {more_less} than you want, or turn "
-                  "using the gyro")
+        if sf.writes_offset:
+            print(f"    {group}_offset_deg = {sf.recommended_offset_deg:+.2f}; the profile has "
+                  f"{format_value(sf.profile_offset_deg)}: turns by the encoders go on this far past their target "
+                  "(the coast after the motors stop), so the hub aims that much short")
     if cal.per_mode:
         left, right = cal.per_mode["pivot_left"], cal.per_mode["pivot_right"]
         print(f"  alone: pivot_left {left.scale:.5f} {fmt_ci(left.scale_ci, 5)}, "
@@ -283,9 +300,11 @@ def add_parser(calibrate_sub: argparse._SubParsersAction) -> None:
     p = calibrate_sub.add_parser(
         "turns", help="fit spin_scale and pivot_scale from gyro-measured turns",
         description="Turn by the encoders through several angles both ways, measure each heading change "
-                    "with the gyro, and fit spin_scale and pivot_scale (with a fixed offset when the data "
-                    "ask for one) with 95 % intervals and residuals. Exit codes: 0 done, 1 too few usable "
-                    "turns, 2 bad input, 3 link failure, 130 stopped.")
+                    "with the gyro, and fit spin_scale and pivot_scale (with spin_offset_deg and "
+                    "pivot_offset_deg, the coast, when the data ask for one) with 95 % intervals and "
+                    "residuals. The coast grows with the speed a turn ends at, so calibrate at the speed "
+                    "you turn at. Exit codes: 0 done, 1 too few usable turns, 2 bad input, 3 link "
+                    "failure, 130 stopped.")
     add_robot_options(p, repeat=2)
     p.add_argument("--angles", type=number_list(0, 1080), default=list(DEFAULT_ANGLES),
                    help="angles in degrees, comma-separated, each turned both ways (default 45,90,180)")
@@ -317,18 +336,20 @@ def cmd_turns(args: argparse.Namespace, ask: Ask = ask_operator,
         runs = collect_turns(connector, session, plan, speed_pct=args.speed_pct, echo=echo)
     finally:
         session.close()
-    cal = analyse_turns(runs, profile.spin_scale, profile.pivot_scale)
+    cal = analyse_turns(runs, profile.spin_scale, profile.pivot_scale, profile.spin_offset_deg,
+                        profile.pivot_offset_deg)
     usable = sum(r.usable for r in runs)
     print_turns(cal, f"turn calibration of {profile.id} over {args.link}: {usable} usable turns of {len(runs)} "
                      f"at {args.speed_pct:g} % by the encoders, heading by the gyro")
     report = {"command": "calibrate turns", "robot": profile.id, "link": args.link, "seed": args.seed,
               "speed_pct": args.speed_pct, **cal.as_dict(), "written": None}
     if args.write:
-        values = {f"{group}_scale": round(sf.scale, 5) for group, sf in cal.scales.items()}
-        offsets = "; ".join(f"{g} offset {sf.offset_deg:+.2f} deg" for g, sf in cal.scales.items()
-                            if sf.offset_significant)
-        why = (f"trackproof calibrate turns, {usable} turns over {args.link}"
-               + (f" ({offsets}: not a profile key)" if offsets else ""))
+        values: dict[str, float] = {}
+        for group, sf in cal.scales.items():
+            values[f"{group}_scale"] = round(sf.scale, 5)
+            if sf.writes_offset:
+                values[f"{group}_offset_deg"] = round(sf.recommended_offset_deg, 2)
+        why = f"trackproof calibrate turns, {usable} turns over {args.link} at {args.speed_pct:g} %"
         write_profile_values(args.robot, values, why)
         report["written"] = {"file": str(args.robot), **values}
         print("wrote " + ", ".join(f"{k} = {format_value(v)}" for k, v in values.items()) + f" to {args.robot}")

@@ -100,7 +100,7 @@ def main():
 
     print("# hello")
     send(wire.HELLO, 1, {"proto": wire.PROTOCOL_VERSION, "session": SESSION, "watchdog_ms": 20000,
-                         "geometry": {"wheel_diameter_mm": 56.0, "track_mm": 112.0}})
+                         "geometry": {"wheel_diameter_mm": 56.0, "track_mm": 112.0, "spin_offset_deg": 1.5}})
     run(500000, stop_on=wire.HUB_INFO, out=emit)
 
     print("# follow_line to the second junction, then a retransmitted start")
