@@ -22,7 +22,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.tomlfile import Table, load_toml
-from hub_side.motion import GEOMETRY_LIMITS
+from hub_side.motion import DEFAULT_GEOMETRY, GEOMETRY_LIMITS
 
 
 @dataclass(frozen=True)
@@ -64,18 +64,18 @@ class RobotProfile:
     source: str = ""
 
     def geometry(self) -> dict[str, float]:
-        """What the hub needs to turn millimetres and degrees into motor degrees. Turn offsets go
-        only when set, so a profile without them still suits a hub from before they existed."""
+        """What the hub needs to turn millimetres and degrees into motor degrees. The keys added
+        since the first hubs go only when they differ from the hub's default, so a profile that
+        does not use them still suits a hub from before they existed."""
         out = {
             "wheel_diameter_mm": self.wheel_diameter_mm,
             "track_mm": self.track_mm,
             "distance_scale": self.distance_scale,
             "spin_scale": self.spin_scale,
             "pivot_scale": self.pivot_scale,
-            "wheel_ratio": self.wheel_ratio,
         }
-        for key in ("spin_offset_deg", "pivot_offset_deg"):
-            if getattr(self, key):
+        for key in ("wheel_ratio", "spin_offset_deg", "pivot_offset_deg"):
+            if getattr(self, key) != DEFAULT_GEOMETRY[key]:
                 out[key] = getattr(self, key)
         return out
 

@@ -2,14 +2,16 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import xml.etree.ElementTree as ET
 
 import pytest
 
 from harness.cli import main
+from harness.profile import load_profile
 from harness.store import Store
-from conftest import write_suite
+from conftest import SUITES_DIR, write_suite
 
 
 
@@ -112,6 +114,8 @@ BAD_PROFILES = [
     ('left = "outer_left"', 'left = "whisker"', "junctions.left: unknown sensor 'whisker'"),
     ("forward_mm = 70.0", 'forward_mm = "far"', "sensors.left.forward_mm: expected a number"),
     ("spin_scale = 1.0", "spin_scale = 7.0", "spin_scale: must be at most 2.0"),
+    ("spin_scale = 1.0", "spin_scale = 1.0\nspin_offset_deg = 45.0", "spin_offset_deg: must be at most 30.0"),
+    ("spin_scale = 1.0", "spin_scale = 1.0\npivot_offset_deg = 'a bit'", "pivot_offset_deg: expected a number"),
 ]
 
 
@@ -125,6 +129,17 @@ def test_bad_profile_names_file_and_key(tmp_path, capsys, good, bad, message):
     assert main(["run", str(suite), "--db", str(tmp_path / "r.sqlite")]) == 2
     err = capsys.readouterr().err
     assert f"{profile}: {message}" in err
+
+
+def test_geometry_sends_newer_keys_only_when_set():
+    # A hub from before wheel_ratio and the turn offsets refuses a hello that names them, so a
+    # profile that leaves them at the hub's defaults does not send them.
+    profile = load_profile(SUITES_DIR / "practice_robot.toml")
+    assert set(profile.geometry()) == {"wheel_diameter_mm", "track_mm", "distance_scale", "spin_scale",
+                                       "pivot_scale"}
+    changed = dataclasses.replace(profile, wheel_ratio=1.02, spin_offset_deg=1.5, pivot_offset_deg=-0.5)
+    assert {k: changed.geometry()[k] for k in ("wheel_ratio", "spin_offset_deg", "pivot_offset_deg")} == {
+        "wheel_ratio": 1.02, "spin_offset_deg": 1.5, "pivot_offset_deg": -0.5}
 
 
 def test_a_missing_serial_port_is_a_clear_link_error(tmp_path, capsys):
