@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 from collections import Counter
 from pathlib import Path
@@ -203,11 +204,12 @@ def cmd_show(args: argparse.Namespace) -> int:
         runs = store.runs(uid)
         measurements = store.measurements(uid)
     console = Console(highlight=False)
-    console.print(f"session {uid}: suite {info['suite_name']} ({info['suite_path']}), robot {info['robot_id']}, "
+    what = f"suite {info['suite_name']} ({info['suite_path']})" if info["suite_path"] else info["suite_name"]
+    console.print(f"session {uid}: {what}, robot {info['robot_id']}, "
                   f"link {info['link']}, seed {info['seed']}, {info['status']}, started {info['started_at']}")
     # A resumed session may hold an aborted try of a repetition and its redo: the last one counts.
     latest = {(o.case, o.repetition): o for o in stored_outcomes(runs, measurements)}
-    for case, judge_by, expect in stored_cases(info["suite_text"]):
+    for case, judge_by, expect in stored_cases(info["suite_text"], list(runs["case_name"])):
         outcomes = [o for (name, _), o in sorted(latest.items()) if name == case]
         stats, checks, case_verdict = judge_case(outcomes, judge_by, expect, len(outcomes))
         counts = Counter(o.status for o in outcomes)
@@ -348,6 +350,11 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("trackproof: interrupted; the robot was told to stop", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # The reader went away (`| head`); what was stored or written stays. Point stdout at
+        # nothing so the interpreter's last flush does not fail again (Python's signal docs).
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 1
 
 
 if __name__ == "__main__":

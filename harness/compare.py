@@ -105,9 +105,11 @@ def load_side(store: Store, uid: str) -> SessionSide:
     (as in `trackproof show`). Values that were not measured (NaN) are left out.
     """
     info = store.session(uid)
-    outcomes = stored_outcomes(store.runs(uid), store.measurements(uid))
+    runs = store.runs(uid)
+    outcomes = stored_outcomes(runs, store.measurements(uid))
     latest = {(o.case, o.repetition): o for o in outcomes}
-    cases = {name: (judge_by, expect) for name, judge_by, expect in stored_cases(info["suite_text"])}
+    cases = {name: (judge_by, expect)
+             for name, judge_by, expect in stored_cases(info["suite_text"], list(runs["case_name"]))}
     values: dict[str, dict[str, dict[str, list[float]]]] = {}
     finished: dict[str, int] = {}
     units: dict[str, str] = {}

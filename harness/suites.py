@@ -29,6 +29,7 @@ import hashlib
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
+from collections.abc import Sequence
 from typing import Any
 
 from harness.analysis import validate_expectations
@@ -163,8 +164,13 @@ def _step(t: Table, profile: RobotProfile, own_table: bool = True) -> Step:
     return Step(action, full)
 
 
-def stored_cases(text: str) -> list[tuple[str, str, dict[str, Any]]]:
+def stored_cases(text: str, run_cases: Sequence[str] = ()) -> list[tuple[str, str, dict[str, Any]]]:
     """(name, judge_by, expectations) of each case in a suite's stored text, in order; the suite
-    was validated when it ran, so this reads it without its profile or course files."""
+    was validated when it ran, so this reads it without its profile or course files. A session
+    that ran no suite (the moves of a calibration command) lists no cases: its cases are then
+    the case names of its runs (run_cases, in the order they ran), judged by the robot against
+    no expectations."""
     data = tomllib.loads(text)
-    return [(c["name"], c.get("judge_by", "robot"), c.get("expect", {})) for c in data.get("cases", [])]
+    if "cases" not in data:
+        return [(name, "robot", {}) for name in dict.fromkeys(run_cases)]
+    return [(c["name"], c.get("judge_by", "robot"), c.get("expect", {})) for c in data["cases"]]

@@ -34,11 +34,13 @@ from harness.analysis.oscillation import Oscillation, oscillation_of
 from harness.calibrate.common import add_robot_options, load_robot, whole_number
 from harness.errors import InputError, TrackproofError
 from harness.links import Link, LinkSpec
+from harness.movelog import MoveLog
 from harness.operator import Ask, ask_operator, confirm_real
 from harness.profile import RobotProfile
 from harness.robot import RobotConnector, open_real_link
 from harness.session import RunRecord, Session
 from harness.sim import SUITES_DIR
+from harness.store import Store
 from harness.telemetry import decode_batches
 from hub_side import wire
 
@@ -205,9 +207,11 @@ class Guard:
         self.tripped_at_s = t
 
 
-def guarded_run(session: Session, params: dict[str, Any], guard: Guard) -> RunRecord:
+def guarded_run(session: Session, params: dict[str, Any], guard: Guard, log: MoveLog | None = None,
+                case: str = "") -> RunRecord:
     """follow_line with the guard watching each telemetry batch as it arrives; when it trips the
-    robot is told to stop there and then, and the run ends with status "stopped"."""
+    robot is told to stop there and then, and the run ends with status "stopped". With a log,
+    the run is stored as a run of `case`."""
     assert session.hub is not None
     sensors = session.hub.sensors
 
@@ -221,7 +225,8 @@ def guarded_run(session: Session, params: dict[str, Any], guard: Guard) -> RunRe
         if guard.feed(np.asarray(batch.t_s), np.asarray(batch.error_pct), np.asarray(batch.reflectance_pct)):
             session.stop_robot()
 
-    return session.run("follow_line", params, telemetry_hz=TELEMETRY_HZ, on_telemetry=watch)
+    return (log or MoveLog()).run(session, case, "follow_line", params, telemetry_hz=TELEMETRY_HZ,
+                                  on_telemetry=watch)
 
 
 # ------------------------------------------------------------------ the procedure
@@ -334,7 +339,7 @@ class Tuner:
     (re-placed, with its placement error); on a real robot the operator puts it back."""
 
     def __init__(self, connector: RobotConnector, settings: TuneSettings, ask: Ask = ask_operator,
-                 on_trial: Callable[[Trial], None] | None = None) -> None:
+                 on_trial: Callable[[Trial], None] | None = None, log: MoveLog | None = None) -> None:
         profile = connector.profile
         follow = profile.follow.get(settings.direction)
         if follow is None:
@@ -349,6 +354,7 @@ class Tuner:
         self.settings = settings
         self.ask = ask
         self.on_trial = on_trial
+        self.log = log or MoveLog()
         self.session: Session | None = None
         self.runs = 0
 
@@ -379,7 +385,7 @@ class Tuner:
         lost_s = 0.1 if len(columns) == 2 else 0.5
         guard = Guard(columns, light, self.limit(), lost_s=lost_s,
                       hysteresis=self.settings.judgement.min_amplitude / 3)
-        record = guarded_run(self.session, self.params(kp, kd), guard)
+        record = guarded_run(self.session, self.params(kp, kd), guard, self.log, f"kp {kp:.4f} kd {kd:.5f}")
         if record.status not in ("done", "stopped"):
             raise TuneFailed(f"follow_line at kp={kp:.3f} ended {record.status!r}: {record.result}")
         if record.status == "stopped" and guard.reason is None:
@@ -488,9 +494,9 @@ class TuneReport:
 
 
 def tune(connector: RobotConnector, settings: TuneSettings, ask: Ask = ask_operator,
-         on_trial: Callable[[Trial], None] | None = None) -> TuneReport:
+         on_trial: Callable[[Trial], None] | None = None, log: MoveLog | None = None) -> TuneReport:
     """Find Ku and Tu, then drive the current gains and every hub-runnable row `verify_runs` times."""
-    with Tuner(connector, settings, ask, on_trial) as tuner:
+    with Tuner(connector, settings, ask, on_trial, log) as tuner:
         assert tuner.session is not None
         confirm_real(tuner.session, plan_text(connector.profile.id, connector.link_name, settings), ask)
         ultimate = tuner.find_ultimate()
@@ -576,7 +582,11 @@ def cmd_tune(args: argparse.Namespace, ask: Ask = ask_operator,
     settings = TuneSettings(direction=args.direction, speed_pct=args.speed_pct or follow.speed_pct,
                             time_s=args.time_s, kp_start=args.kp_start, step=args.step,
                             bisections=args.bisections, verify_runs=args.verify_runs, limit=args.limit)
-    report = tune(connector, settings, ask)
+    options = {"direction": settings.direction, "speed_pct": settings.speed_pct, "time_s": settings.time_s,
+               "kp_start": settings.kp_start, "step": settings.step, "bisections": settings.bisections,
+               "verify_runs": settings.verify_runs, "limit": settings.limit}
+    with Store(args.db) as store, MoveLog(store, connector, "tune", options) as log:
+        report = tune(connector, settings, ask, log=log)
     print_report(report)
     if args.json:
         from harness.jsonout import write_json

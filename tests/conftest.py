@@ -19,6 +19,14 @@ def connect(seed: int = 1) -> tuple[Simulation, Session]:
 
 
 @pytest.fixture
+def results_in_tmp(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    """Commands that keep their moves in the default results store (calibrate, tune) write it
+    into the test's own folder, not wherever pytest was started."""
+    monkeypatch.chdir(tmp_path)
+    return tmp_path
+
+
+@pytest.fixture
 def sim_session() -> tuple[Simulation, Session]:
     return connect()
 

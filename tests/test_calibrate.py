@@ -32,6 +32,9 @@ from harness.profile import RobotProfile, load_profile
 from harness.robot import RobotConnector
 from harness.sim import DEFAULT_COURSE, DEFAULT_PROFILE, Simulation, truth_report, truth_snapshot
 from harness.sim.course import load_course
+from harness.store import Store
+
+pytestmark = pytest.mark.usefixtures("results_in_tmp")
 
 PRACTICE_TRUTH = load_course(DEFAULT_COURSE).truth
 NOMINAL = load_profile(DEFAULT_PROFILE)
@@ -527,10 +530,11 @@ def test_real_robot_flow_with_ruler_readings(monkeypatch, capsys, robot_file: Pa
 
     from harness.calibrate import distance
 
+    db = robot_file.parent / "moves.sqlite"
     args = argparse.Namespace(robot=robot_file, course=None, link="serial:/dev/fake-hub", seed=0, repeat=1,
                               write=True, json=None, speeds=[30.0, 50.0], distances=[250.0, 500.0],
                               action="follow_line", measure=None, line_mm=None, probe_sensor=None,
-                              for_mm=500.0, band=None)
+                              for_mm=500.0, band=None, db=db)
     code = distance.cmd_distance(args, ask=ask, open_link=lambda spec, profile: SimLink(sim))
     assert code == 0
     assert "Safety" in prompts[0] and sum("start mark" in p for p in prompts) == 4
@@ -540,6 +544,14 @@ def test_real_robot_flow_with_ruler_readings(monkeypatch, capsys, robot_file: Pa
     # Half-millimetre readings over 250 to 500 mm: within 1e-3 of the truth.
     assert load_profile(robot_file).distance_scale == pytest.approx(
         true_scales(PRACTICE_TRUTH)["distance_scale"], abs=1e-3)
+    # Every drive is kept in the results store, under the real link's name.
+    with Store(db, readonly=True) as store:
+        session = store.sessions().iloc[0]
+        runs = store.runs(session["uid"])
+    assert (session["suite_name"], session["link"], session["status"]) == (
+        "calibrate distance", "serial:/dev/fake-hub", "finished")
+    assert sorted(runs["case_name"]) == sorted(f"follow_line {d:g} mm at {s:g} %" for s in (30, 50) for d in (250, 500))
+    assert set(runs["status"]) == {"pass"}
 
 
 def test_real_robot_operator_can_refuse_to_start(monkeypatch, robot_file: Path) -> None:
@@ -549,12 +561,15 @@ def test_real_robot_operator_can_refuse_to_start(monkeypatch, robot_file: Path) 
     from harness.calibrate import turns
     from harness.operator import OperatorStopped
 
+    db = robot_file.parent / "moves.sqlite"
     args = argparse.Namespace(robot=robot_file, course=None, link="serial:/dev/fake-hub", seed=0, repeat=1,
-                              write=True, json=None, angles=[90.0, 180.0], modes=["spin"], speed_pct=40.0)
+                              write=True, json=None, angles=[90.0, 180.0], modes=["spin"], speed_pct=40.0, db=db)
     with pytest.raises(OperatorStopped) as exc:
         turns.cmd_turns(args, ask=lambda prompt: "no", open_link=lambda spec, profile: SimLink(sim))
     assert exc.value.exit_code == 130
     assert sim.robot.travel_mm == before and robot_file.read_text() == DEFAULT_PROFILE.read_text()
+    with Store(db, readonly=True) as store:  # nothing moved, so no session either
+        assert store.sessions().empty
 
 
 def test_a_hub_that_resets_itself_needs_no_operator() -> None:

@@ -74,6 +74,23 @@ def test_python_dash_m_harness_works_like_trackproof():
     assert json.loads(done.stdout)["result"]["status"] == "done"
 
 
+def test_a_reader_that_goes_away_is_no_traceback(tmp_path):
+    # `trackproof calibrate turns | head -1`: head leaves after one line; the command's later
+    # prints meet a closed pipe. The moves are stored all the same.
+    db = tmp_path / "r.sqlite"
+    command = [sys.executable, "-m", "harness", "calibrate", "turns", "--modes", "spin", "--repeat", "1",
+               "--db", str(db)]
+    with subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE) as proc:
+        assert proc.stdout is not None and proc.stderr is not None
+        proc.stdout.readline()
+        proc.stdout.close()
+        err = proc.stderr.read().decode()
+        code = proc.wait(timeout=60)
+    assert "Traceback" not in err and code == 1
+    assert "6 runs: 6 pass" in subprocess.run([sys.executable, "-m", "harness", "sessions", "--db", str(db)],
+                                              capture_output=True, text=True, timeout=60).stdout
+
+
 def test_values_parse_as_numbers_flags_and_lists():
     assert parse_value("3") == 3 and parse_value("2.5") == 2.5
     assert parse_value("true") is True and parse_value("left,right") == ["left", "right"]

@@ -41,6 +41,8 @@ from harness.sim import DEFAULT_PROFILE, Simulation, truth_report, truth_snapsho
 from harness.sim.course import load_course
 from micropython_runner import run_micropython
 
+pytestmark = pytest.mark.usefixtures("results_in_tmp")
+
 ROOT = Path(__file__).resolve().parent.parent
 
 # ------------------------------------------------------------------ the formulas

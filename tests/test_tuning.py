@@ -42,6 +42,8 @@ from harness.tuning import (
     tune,
 )
 
+pytestmark = pytest.mark.usefixtures("results_in_tmp")
+
 ROOT = Path(__file__).resolve().parent.parent
 PROFILE = load_profile(DEFAULT_PROFILE)
 

@@ -15,6 +15,7 @@ from harness.profile import RobotProfile, load_profile
 from harness.links import Link, LinkSpec
 from harness.robot import RobotConnector, open_real_link
 from harness.sim import DEFAULT_COURSE, DEFAULT_PROFILE
+from harness.store import DEFAULT_DB
 from hub_side.actions import BUILTINS
 from hub_side.motion import ParamError, check_params
 
@@ -69,6 +70,8 @@ def add_robot_options(p: argparse.ArgumentParser, repeat: int) -> None:
     p.add_argument("--write", action="store_true",
                    help="write the recommended values into the --robot profile (with a dated note)")
     p.add_argument("--json", type=Path, metavar="PATH", help="write the full result as JSON here")
+    p.add_argument("--db", type=Path, default=Path(DEFAULT_DB),
+                   help=f"results database that keeps every move made (default {DEFAULT_DB})")
     p.add_argument("--reset", metavar="ROUTINE",
                    help="a routine on the hub that drives the robot back to the start between runs "
                         "(default: the simulator re-places it; on a real robot the operator is asked)")

@@ -42,10 +42,12 @@ from harness.calibrate.fit import LineFit, fit_line, fit_through_origin
 from harness.calibrate.writeback import format_value, write_profile_values
 from harness.errors import InputError, TrackproofError
 from harness.links import Link, LinkSpec
+from harness.movelog import MoveLog
 from harness.profile import RobotProfile
 from harness.robot import RobotConnector, open_real_link
 from harness.session import Session
 from harness.sim import truth_report, truth_snapshot
+from harness.store import Store
 
 ACTIONS = ("follow_line", "drive_straight")
 MEASURES = ("truth", "ruler", "probe")
@@ -198,10 +200,12 @@ def drive_params(action: str, profile: RobotProfile, distance_mm: float, speed_p
 
 def collect_drives(connector: RobotConnector, session: Session, plan: list[tuple[float, float]], *,
                    action: str, measure: str, ask: Ask, line_mm: float | None = None,
-                   probe_sensor: str | None = None, echo: Callable[[str], None] = lambda s: None) -> list[DriveRun]:
+                   probe_sensor: str | None = None, echo: Callable[[str], None] = lambda s: None,
+                   log: MoveLog | None = None) -> list[DriveRun]:
     """Drive each (speed_pct, distance_mm) of the plan from the start mark and measure it."""
     profile = connector.profile
     sim = connector.sim
+    log = log or MoveLog()
     runs: list[DriveRun] = []
     for index, (speed, distance) in enumerate(plan, 1):
         run = DriveRun(speed, distance)
@@ -211,7 +215,8 @@ def collect_drives(connector: RobotConnector, session: Session, plan: list[tuple
             run.note = "skipped by the operator"
             continue
         before = truth_snapshot(sim) if sim is not None else None
-        record = session.run(action, drive_params(action, profile, distance, speed), telemetry_hz=0)
+        record = log.run(session, f"{action} {distance:g} mm at {speed:g} %", action,
+                         drive_params(action, profile, distance, speed), telemetry_hz=0)
         truth = truth_report(before, truth_snapshot(sim)) if before is not None and sim is not None else None
         result = record.result
         if record.status != "done":
@@ -227,7 +232,7 @@ def collect_drives(connector: RobotConnector, session: Session, plan: list[tuple
         elif measure == "ruler":
             run.reference_mm = _ask_ruler(ask, label, run)
         else:
-            _probe(session, profile, run, line_mm, probe_sensor)
+            _probe(log, session, profile, run, line_mm, probe_sensor)
         echo(f"{label}: motor {run.motor_deg:.1f} deg, hub {run.hub_mm:.1f} mm"
              + (f", reference {run.reference_mm:.1f} mm" if run.reference_mm is not None else "")
              + (f", edge {run.edge_mm:.1f} mm" if run.edge_mm is not None else "")
@@ -251,7 +256,7 @@ def _ask_ruler(ask: Ask, label: str, run: DriveRun) -> float | None:
             return value
 
 
-def _probe(session: Session, profile: RobotProfile, run: DriveRun, line_mm: float | None,
+def _probe(log: MoveLog, session: Session, profile: RobotProfile, run: DriveRun, line_mm: float | None,
            sensor: str | None) -> None:
     """Creep on until the probe sensor crosses the near edge of the line ahead."""
     if line_mm is None or sensor is None:
@@ -259,7 +264,8 @@ def _probe(session: Session, profile: RobotProfile, run: DriveRun, line_mm: floa
     params = profile.action_defaults("probe_edge", {
         "sensor": sensor, "direction": "forward",
         "max_mm": min(10000.0, max(1.0, line_mm - run.commanded_mm + 60.0))})
-    record = session.run("probe_edge", params, telemetry_hz=0)
+    record = log.run(session, f"probe_edge after {run.commanded_mm:g} mm at {run.speed_pct:g} %", "probe_edge",
+                     params, telemetry_hz=0)
     result = record.result
     if record.status != "done" or result.get("edge_mm") is None:
         run.note = "probe found no line edge ahead"
@@ -362,16 +368,19 @@ def cmd_distance(args: argparse.Namespace, ask: Ask = ask_operator,
     for speed in speeds:
         check_action(args.action, drive_params(args.action, profile, max(distances), speed), profile)
     plan = [(speed, distance) for _ in range(args.repeat) for speed in speeds for distance in distances]
-    session = connector.connect()
-    echo = (lambda s: None) if connector.sim is not None else (lambda s: print(s, flush=True))
-    try:
-        confirm_real(session, f"About to drive {len(plan)} times ({args.action}: "
-                              f"{', '.join(f'{d:g}' for d in distances)} mm at {', '.join(f'{s:g}' for s in speeds)} %), "
-                              f"measured by {measure}.", ask)
-        runs = collect_drives(connector, session, plan, action=args.action, measure=measure, ask=ask,
-                              line_mm=args.line_mm, probe_sensor=args.probe_sensor, echo=echo)
-    finally:
-        session.close()
+    options = {"action": args.action, "distances": distances, "speeds": speeds, "measure": measure,
+               "line_mm": args.line_mm, "probe_sensor": args.probe_sensor, "repeat": args.repeat}
+    with Store(args.db) as store, MoveLog(store, connector, "calibrate distance", options) as log:
+        session = connector.connect()
+        echo = (lambda s: None) if connector.sim is not None else (lambda s: print(s, flush=True))
+        try:
+            confirm_real(session, f"About to drive {len(plan)} times ({args.action}: "
+                                  f"{', '.join(f'{d:g}' for d in distances)} mm at "
+                                  f"{', '.join(f'{s:g}' for s in speeds)} %), measured by {measure}.", ask)
+            runs = collect_drives(connector, session, plan, action=args.action, measure=measure, ask=ask,
+                                  line_mm=args.line_mm, probe_sensor=args.probe_sensor, echo=echo, log=log)
+        finally:
+            session.close()
     cal = analyse_distance(runs, wheel_diameter_mm=profile.wheel_diameter_mm, profile_scale=profile.distance_scale,
                            for_mm=args.for_mm, line_mm=args.line_mm)
     usable = sum(r.usable for r in runs)

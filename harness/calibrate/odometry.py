@@ -28,10 +28,12 @@ from harness.calibrate.common import add_robot_options, check_action, load_robot
 from harness.jsonout import write_json
 from harness.operator import Ask, OperatorStopped, ask_operator, confirm_real
 from harness.errors import InputError, TrackproofError
+from harness.movelog import MoveLog
 from harness.profile import RobotProfile
 from harness.robot import RobotConnector
 from harness.session import RunRecord, Session
 from harness.sim import truth_snapshot
+from harness.store import Store
 from hub_side.motion import GEOMETRY_LIMITS
 
 DIRECTIONS = ("cw", "ccw")
@@ -186,10 +188,13 @@ def compose_wheel_ratio(old_ratio: float, e_d: float) -> float:
 class SquareTest:
     """Runs the squares on one robot and collects the return errors."""
 
-    def __init__(self, connector: RobotConnector, plan: SquarePlan, ask: Ask = ask_operator) -> None:
+    def __init__(self, connector: RobotConnector, plan: SquarePlan, ask: Ask = ask_operator,
+                 log: MoveLog | None = None, label: str = "square") -> None:
         self.connector = connector
         self.plan = plan
         self.ask = ask
+        self.log = log or MoveLog()
+        self.label = label  # names the stored moves: "cw square, move 1: drive_straight"
         self.model = OdometryModel.of(connector.profile)
 
     def run(self, session: Session, runs: int) -> list[SquareRun]:
@@ -207,8 +212,9 @@ class SquareTest:
             start = truth_snapshot(sim)["pose"]
         pose = (0.0, 0.0, 0.0)
         from_totals = False
-        for action, params in self.plan.steps(direction):
-            record = session.run(action, params, telemetry_hz=TELEMETRY_HZ)
+        for step, (action, params) in enumerate(self.plan.steps(direction), 1):
+            record = self.log.run(session, f"{direction} {self.label}, move {step}: {action}", action, params,
+                                  telemetry_hz=TELEMETRY_HZ)
             if record.status != "done":
                 raise RunFailed(f"{direction} square {rep}: {action} ended {record.status!r} "
                                 f"({record.result}); nothing concluded")
@@ -278,11 +284,11 @@ class OdometryCalibration:
 
 
 def calibrate_odometry(connector: RobotConnector, plan: SquarePlan, runs: int, *, verify: bool = False,
-                       ask: Ask = ask_operator, seed: int = 0) -> OdometryCalibration:
+                       ask: Ask = ask_operator, seed: int = 0, log: MoveLog | None = None) -> OdometryCalibration:
     """The whole test: squares both ways, UMBmark, and with verify the squares again with the
     corrected track and wheel ratio (on the simulator the robot is the same one, re-placed)."""
     profile = connector.profile
-    test = SquareTest(connector, plan, ask)
+    test = SquareTest(connector, plan, ask, log)
     session = connector.connect()
     try:
         confirm_real(session, f"About to drive {runs} clockwise and {runs} counter-clockwise squares of "
@@ -299,7 +305,7 @@ def calibrate_odometry(connector: RobotConnector, plan: SquarePlan, runs: int, *
         return calibration
     corrected = replace(profile, track_mm=calibration.track_mm_new, wheel_ratio=calibration.wheel_ratio_new)
     connector.profile = corrected
-    check = SquareTest(connector, plan, ask)
+    check = SquareTest(connector, plan, ask, log, label="corrected square")
     session = connector.connect()
     try:
         again = check.run(session, runs)
@@ -368,7 +374,10 @@ def cmd_odometry(args: argparse.Namespace, ask: Ask = ask_operator) -> int:
     plan = SquarePlan(args.side_mm, args.speed_pct, args.turn_speed_pct)
     for action, params in plan.steps("cw")[:2]:
         check_action(action, params, profile)
-    cal = calibrate_odometry(connector, plan, args.repeat, verify=args.verify, ask=ask, seed=args.seed)
+    options = {"side_mm": args.side_mm, "speed_pct": args.speed_pct, "turn_speed_pct": args.turn_speed_pct,
+               "repeat": args.repeat, "verify": args.verify}
+    with Store(args.db) as store, MoveLog(store, connector, "calibrate odometry", options) as log:
+        cal = calibrate_odometry(connector, plan, args.repeat, verify=args.verify, ask=ask, seed=args.seed, log=log)
     print_calibration(cal)
     if args.json:
         write_json(args.json, cal.as_dict())

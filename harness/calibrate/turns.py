@@ -38,9 +38,11 @@ from harness.calibrate.fit import LineFit, fit_with_offset_if_needed
 from harness.calibrate.writeback import format_value, write_profile_values
 from harness.errors import InputError, TrackproofError
 from harness.links import Link, LinkSpec
+from harness.movelog import MoveLog
 from harness.profile import RobotProfile
 from harness.robot import RobotConnector, open_real_link
 from harness.session import Session
+from harness.store import Store
 from harness.sim import truth_report, truth_snapshot
 
 MODES = ("spin", "pivot_left", "pivot_right")
@@ -218,14 +220,17 @@ def turn_plan(modes: list[str], angles: list[float], repeat: int) -> list[tuple[
 
 
 def collect_turns(connector: RobotConnector, session: Session, plan: list[tuple[str, float]], *,
-                  speed_pct: float, echo: Callable[[str], None] = lambda s: None) -> list[TurnRun]:
+                  speed_pct: float, echo: Callable[[str], None] = lambda s: None,
+                  log: MoveLog | None = None) -> list[TurnRun]:
     sim = connector.sim
+    log = log or MoveLog()
     runs: list[TurnRun] = []
     for index, (mode, angle) in enumerate(plan, 1):
         run = TurnRun(mode, angle)
         runs.append(run)
         before = truth_snapshot(sim) if sim is not None else None
-        record = session.run("turn", turn_params(mode, angle, speed_pct), telemetry_hz=0)
+        record = log.run(session, f"{mode} {angle:+g} deg", "turn", turn_params(mode, angle, speed_pct),
+                         telemetry_hz=0)
         if record.status != "done":
             run.note = f"turn ended {record.status}: {record.result.get('text', '')}".rstrip(": ")
         else:
@@ -324,18 +329,20 @@ def cmd_turns(args: argparse.Namespace, ask: Ask = ask_operator,
     for mode in modes:
         check_action("turn", turn_params(mode, max(angles), args.speed_pct), profile)
     plan = turn_plan(modes, angles, args.repeat)
-    session = connector.connect()
-    echo = (lambda s: None) if connector.sim is not None else (lambda s: print(s, flush=True))
-    try:
-        hub = session.hub
-        if hub is not None and hub.board.get("gyro") is False:
-            raise InputError(f"hub {hub.robot_id} reports no gyro: turns are measured with one", key="--link")
-        confirm_real(session, f"About to turn {len(plan)} times in place ({', '.join(modes)}; "
-                              f"{', '.join(f'{a:g}' for a in angles)} deg each way at {args.speed_pct:g} %). "
-                              "Pivots sweep a circle of the track's radius around a wheel: leave room.", ask)
-        runs = collect_turns(connector, session, plan, speed_pct=args.speed_pct, echo=echo)
-    finally:
-        session.close()
+    options = {"angles": angles, "modes": modes, "speed_pct": args.speed_pct, "repeat": args.repeat}
+    with Store(args.db) as store, MoveLog(store, connector, "calibrate turns", options) as log:
+        session = connector.connect()
+        echo = (lambda s: None) if connector.sim is not None else (lambda s: print(s, flush=True))
+        try:
+            hub = session.hub
+            if hub is not None and hub.board.get("gyro") is False:
+                raise InputError(f"hub {hub.robot_id} reports no gyro: turns are measured with one", key="--link")
+            confirm_real(session, f"About to turn {len(plan)} times in place ({', '.join(modes)}; "
+                                  f"{', '.join(f'{a:g}' for a in angles)} deg each way at {args.speed_pct:g} %). "
+                                  "Pivots sweep a circle of the track's radius around a wheel: leave room.", ask)
+            runs = collect_turns(connector, session, plan, speed_pct=args.speed_pct, echo=echo, log=log)
+        finally:
+            session.close()
     cal = analyse_turns(runs, profile.spin_scale, profile.pivot_scale, profile.spin_offset_deg,
                         profile.pivot_offset_deg)
     usable = sum(r.usable for r in runs)

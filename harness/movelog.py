@@ -1,0 +1,115 @@
+"""Every move a calibration or tuning command makes, kept in the results store.
+
+`trackproof run` stores each run of a suite the moment it ends. The calibrate and tune commands
+drive the robot as much, so their moves go into the same store: one session per command,
+named after it ("calibrate turns"), one case per kind of move ("spin +90 deg", "kp 0.4000"), each
+move a run with its result, events, measurements and telemetry. `trackproof sessions` and `show`
+list them and `trackproof compare` can set two of them side by side (the same turns before and
+after a rebuild). The session's stored text is the command and its options, not a suite.
+
+The session begins with the first move, so a command refused before the robot moves leaves
+nothing behind, and each move is committed as it ends, so a lost link or Ctrl-C keeps the moves
+already made.
+"""
+
+from __future__ import annotations
+
+from importlib.metadata import version
+from pathlib import Path
+from typing import Any
+
+import tomlkit
+
+from harness.errors import HubRefused, LinkError, ProtocolError
+from harness.measure import measure_run
+from harness.robot import RobotConnector
+from harness.runner import redact_secret
+from harness.session import RunRecord, Session
+from harness.sim import truth_report, truth_snapshot
+from harness.store import Store
+from harness.suites import Step
+
+LINE_WIDTH_MM = 19.0  # for measurements that need the tape's width; moves made here use none
+
+
+class MoveLog:
+    """Runs a move on the session and stores it as a run of `case`; MoveLog() stores nothing."""
+
+    def __init__(self, store: Store | None = None, connector: RobotConnector | None = None, command: str = "",
+                 options: dict[str, Any] | None = None) -> None:
+        if store is not None and connector is None:
+            raise ValueError("storing moves needs the robot's connector (its profile, link and simulator)")
+        self.store = store
+        self.connector = connector
+        self.command = command
+        self.options = options or {}
+        self.uid: str | None = None
+        self._repetitions: dict[str, int] = {}
+
+    def run(self, session: Session, case: str, action: str, params: dict[str, Any], **run_options: Any) -> RunRecord:
+        """session.run(action, params, **run_options), then the move stored; a move that ends in an
+        exception is stored too (link_lost or aborted) before the exception goes on."""
+        if self.store is None or self.connector is None:
+            return session.run(action, params, **run_options)
+        sim = self.connector.sim
+        before = truth_snapshot(sim) if sim is not None else None
+        try:
+            record = session.run(action, params, **run_options)
+        except HubRefused as exc:
+            self._store(case, action, params, "fail", None, None, note=str(exc))
+            raise
+        except BaseException as exc:
+            lost = isinstance(exc, (LinkError, ProtocolError))
+            self._store(case, action, params, "link_lost" if lost else "aborted", None, None,
+                        note=f"{type(exc).__name__}: {exc}".rstrip(": "))
+            raise
+        truth = truth_report(before, truth_snapshot(sim)) if before is not None and sim is not None else None
+        if record.telemetry.dropped:
+            status, note = "link_lost", f"telemetry incomplete: {record.telemetry.dropped} samples lost on the link"
+        elif record.status == "done":
+            status, note = "pass", ""
+        else:
+            status, note = "fail", f"{action} ended {record.status}"
+        self._store(case, action, params, status, record, truth, note=note)
+        return record
+
+    def close(self, finished: bool) -> None:
+        """End the session: 'finished', or 'aborted' when the command stopped part way."""
+        if self.store is not None and self.uid is not None:
+            self.store.end_session(self.uid, "finished" if finished else "aborted")
+            self.uid = None
+
+    def __enter__(self) -> MoveLog:
+        return self
+
+    def __exit__(self, exc_type: type[BaseException] | None, *rest: object) -> None:
+        self.close(exc_type is None)
+
+    # ------------------------------------------------------------ storing
+
+    def _begin(self) -> str:
+        assert self.store is not None and self.connector is not None
+        profile = self.connector.profile
+        text = Path(profile.source).read_text(encoding="utf-8") if profile.source else ""
+        described = tomlkit.document()
+        described.add(tomlkit.comment(f"Moves made by `trackproof {self.command}`; not a suite to run."))
+        described["command"] = self.command
+        described["options"] = {k: v for k, v in self.options.items() if v is not None}
+        return self.store.begin_session(
+            suite_name=self.command, suite_path="", suite_text=tomlkit.dumps(described),
+            profile_text=redact_secret(text), robot_id=profile.id, link=self.connector.link_name,
+            seed=self.connector.seed, tool_version=version("trackproof"))
+
+    def _store(self, case: str, action: str, params: dict[str, Any], status: str, record: RunRecord | None,
+               truth: dict[str, Any] | None, note: str) -> None:
+        assert self.store is not None
+        if self.uid is None:
+            self.uid = self._begin()
+        repetition = self._repetitions[case] = self._repetitions.get(case, 0) + 1
+        run_id = self.store.begin_run(self.uid, case, repetition, {"steps": [params]})
+        if record is None:
+            self.store.finish_run(run_id, status, {}, [], [], None, note=note)
+            return
+        measurements = measure_run((Step(action, params),), [record], [truth], LINE_WIDTH_MM)
+        self.store.finish_run(run_id, status, {"steps": [record.result]}, list(record.events),
+                              [m.as_tuple() for m in measurements], record.telemetry, note=note)
