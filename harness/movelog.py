@@ -43,7 +43,9 @@ class MoveLog:
         self.connector = connector
         self.command = command
         self.options = options or {}
-        self.uid: str | None = None
+        self.uid: str | None = None  # the session, once the first move is stored
+        self.moves = 0
+        self._open = False
         self._repetitions: dict[str, int] = {}
 
     def run(self, session: Session, case: str, action: str, params: dict[str, Any], **run_options: Any) -> RunRecord:
@@ -75,9 +77,16 @@ class MoveLog:
 
     def close(self, finished: bool) -> None:
         """End the session: 'finished', or 'aborted' when the command stopped part way."""
-        if self.store is not None and self.uid is not None:
+        if self.store is not None and self.uid is not None and self._open:
             self.store.end_session(self.uid, "finished" if finished else "aborted")
-            self.uid = None
+            self._open = False
+
+    def kept(self) -> str:
+        """Where the moves went, for the end of a command's report."""
+        if self.store is None or self.uid is None:
+            return "no moves were stored"
+        return (f"{self.moves} moves kept in {self.store.path} as session {self.uid} "
+                f"(trackproof show {self.uid} --db {self.store.path})")
 
     def __enter__(self) -> MoveLog:
         return self
@@ -105,6 +114,8 @@ class MoveLog:
         assert self.store is not None
         if self.uid is None:
             self.uid = self._begin()
+            self._open = True
+        self.moves += 1
         repetition = self._repetitions[case] = self._repetitions.get(case, 0) + 1
         run_id = self.store.begin_run(self.uid, case, repetition, {"steps": [params]})
         if record is None:

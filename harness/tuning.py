@@ -588,10 +588,11 @@ def cmd_tune(args: argparse.Namespace, ask: Ask = ask_operator,
     with Store(args.db) as store, MoveLog(store, connector, "tune", options) as log:
         report = tune(connector, settings, ask, log=log)
     print_report(report)
+    print(log.kept())
     if args.json:
         from harness.jsonout import write_json
 
-        write_json(args.json, report.as_dict())
+        write_json(args.json, {**report.as_dict(), "stored_session": log.uid})
     if args.write:
         rec = report.recommended
         if rec is None:

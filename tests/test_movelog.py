@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import tomllib
 from pathlib import Path
 from typing import Any
@@ -106,9 +107,12 @@ def test_stored_cases_of_a_session_without_a_suite_come_from_its_runs() -> None:
 def test_a_calibration_is_listed_shown_and_compared(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     db = str(tmp_path / "r.sqlite")
     for seed in ("1", "2"):
-        args = ["calibrate", "turns", "--db", db, "--repeat", "1", "--modes", "spin", "--seed", seed]
+        report = tmp_path / f"turns-{seed}.json"
+        args = ["calibrate", "turns", "--db", db, "--repeat", "1", "--modes", "spin", "--seed", seed,
+                "--json", str(report)]
         assert cli.main(args) == 0
-    capsys.readouterr()
+        uid = json.loads(report.read_text())["stored_session"]
+        assert f"6 moves kept in {db} as session {uid}" in capsys.readouterr().out
     assert cli.main(["sessions", "--db", db]) == 0
     listed = capsys.readouterr().out.splitlines()
     assert len(listed) == 2 and all("calibrate turns" in line and "6 runs: 6 pass" in line for line in listed)

@@ -386,8 +386,10 @@ def cmd_distance(args: argparse.Namespace, ask: Ask = ask_operator,
     usable = sum(r.usable for r in runs)
     print_distance(cal, f"distance calibration of {profile.id} over {args.link}: {args.action}, "
                         f"{usable} usable runs of {len(runs)}, travelled distance by {measure}")
+    print(log.kept())
     report = {"command": "calibrate distance", "robot": profile.id, "link": args.link, "seed": args.seed,
-              "action": args.action, "measure": measure, **cal.as_dict(), "written": None}
+              "action": args.action, "measure": measure, **cal.as_dict(), "written": None,
+              "stored_session": log.uid}
     if args.write:
         if args.band is not None:
             band = cal.band_for(args.band)

@@ -379,8 +379,9 @@ def cmd_odometry(args: argparse.Namespace, ask: Ask = ask_operator) -> int:
     with Store(args.db) as store, MoveLog(store, connector, "calibrate odometry", options) as log:
         cal = calibrate_odometry(connector, plan, args.repeat, verify=args.verify, ask=ask, seed=args.seed, log=log)
     print_calibration(cal)
+    print(log.kept())
     if args.json:
-        write_json(args.json, cal.as_dict())
+        write_json(args.json, {**cal.as_dict(), "stored_session": log.uid})
     if args.write:
         from harness.calibrate.writeback import write_profile_values
 

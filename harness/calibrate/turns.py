@@ -348,8 +348,9 @@ def cmd_turns(args: argparse.Namespace, ask: Ask = ask_operator,
     usable = sum(r.usable for r in runs)
     print_turns(cal, f"turn calibration of {profile.id} over {args.link}: {usable} usable turns of {len(runs)} "
                      f"at {args.speed_pct:g} % by the encoders, heading by the gyro")
+    print(log.kept())
     report = {"command": "calibrate turns", "robot": profile.id, "link": args.link, "seed": args.seed,
-              "speed_pct": args.speed_pct, **cal.as_dict(), "written": None}
+              "speed_pct": args.speed_pct, **cal.as_dict(), "written": None, "stored_session": log.uid}
     if args.write:
         values: dict[str, float] = {}
         for group, sf in cal.scales.items():
