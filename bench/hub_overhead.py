@@ -7,18 +7,19 @@ high-resolution clock (MicroPython's ticks_us only advances in whole millisecond
 The scripted board's sensor and motor calls count as part of the tick, as on a hub.
 
 Timings of one process wander by tens of percent (the WebAssembly engine recompiles hot code and
-collects garbage at its own times), so runs go in on/off pairs after warm-up pairs, and the
-median pair's ratio counts: it is steady to a few percent from one invocation to the next. The
-microsecond figures come from the fastest run of each mode and wander more.
+collects garbage at its own times), so runs go in on/off pairs, in alternating order, after
+warm-up pairs, and the median pair's ratio counts: it is steady to a few percent from one
+invocation to the next. The microsecond figures scale the fastest run without telemetry, and
+wander more.
 
 A third figure repeats the pairs with the CRC and COBS replaced by no-ops: the part of the cost
 that a checksum and framing done in C could remove, and what would remain.
 
-    python bench/hub_overhead.py [--seconds 5] [--pairs 25]
+    python bench/hub_overhead.py [--seconds 5] [--pairs 41]
 
 Prints:
     hub_telemetry_overhead_pct: <(on - off) / off * 100, median pair> %
-    hub_telemetry_us_per_sample: <(on - off) / samples, fastest runs> us
+    hub_telemetry_us_per_sample: <(ratio - 1) x the fastest run without, per sample> us
     hub_tick_us: <wall time of one control tick with telemetry off, fastest run> us
     hub_telemetry_overhead_pct_framing_free: <as the first, CRC and COBS skipped> %
 """
@@ -79,8 +80,13 @@ def one_run(telemetry_hz, framing_free):
 def median_pair(framing_free):
     pairs = []
     for k in range(WARMUP_PAIRS + PAIRS):
-        on = one_run(100, framing_free)
-        off = one_run(0, framing_free)
+        # Which mode goes first alternates, so any effect of the order cancels out.
+        if k %% 2:
+            off = one_run(0, framing_free)
+            on = one_run(100, framing_free)
+        else:
+            on = one_run(100, framing_free)
+            off = one_run(0, framing_free)
         if on[1] != off[1]:
             raise SystemExit("control ticks differ: %%d with telemetry, %%d without" %% (on[1], off[1]))
         if k >= WARMUP_PAIRS:
@@ -111,12 +117,13 @@ def measure(seconds: int, pairs: int) -> dict[int, dict[str, float]]:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seconds", type=int, default=5, help="virtual seconds of follow_line per run")
-    parser.add_argument("--pairs", type=int, default=25, help="timed on/off pairs per figure; the median counts")
+    parser.add_argument("--pairs", type=int, default=41, help="timed on/off pairs per figure; the median counts")
     args = parser.parse_args()
     rows = measure(args.seconds, args.pairs)
     full, free = rows[0], rows[1]
     print(f"hub_telemetry_overhead_pct: {(full['ratio'] - 1) * 100:.1f} %")
-    print(f"hub_telemetry_us_per_sample: {(full['on_ms'] - full['off_ms']) * 1000 / full['samples']:.1f} us")
+    per_sample_us = (full["ratio"] - 1) * full["off_ms"] * 1000 / full["samples"]
+    print(f"hub_telemetry_us_per_sample: {per_sample_us:.1f} us")
     print(f"hub_tick_us: {full['off_ms'] * 1000 / full['ticks']:.1f} us")
     print(f"hub_telemetry_overhead_pct_framing_free: {(free['ratio'] - 1) * 100:.1f} %")
     print(f"# {full['ticks']:.0f} control ticks and {full['samples']:.0f} samples a run; fastest runs "

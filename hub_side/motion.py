@@ -129,7 +129,10 @@ def encoder_heading_deg(left_deg, right_deg, geometry):
 
 def turn_aim_deg(angle_deg, mode, geometry):
     """The signed angle a turn by the encoders aims for, so that with its offset it lands on
-    angle_deg; never past zero (an offset larger than the angle is no turn at all)."""
+    angle_deg; never past zero (an offset larger than the angle is no turn at all). A negative
+    offset (turns that stop short) aims further; no turn asked is no turn whatever the offset."""
+    if angle_deg == 0:
+        return 0.0
     offset = geometry.get("spin_offset_deg" if mode == "spin" else "pivot_offset_deg", 0.0)
     aim = max(0.0, abs(angle_deg) - offset)
     return aim if angle_deg >= 0 else -aim

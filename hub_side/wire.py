@@ -4,7 +4,7 @@ A frame on the wire is COBS(raw) followed by one 0x00 delimiter, where
 
     raw = type:u8 | seq:u16le | body | crc:u16le
 
-and crc is CRC-16/IBM-3740 (poly 0x1021, init 0xFFFF, no reflection, no xorout; check value of
+and crc is CRC-16/CCITT-FALSE (poly 0x1021, init 0xFFFF, no reflection, no xorout; check value of
 "123456789" is 0x29B1 in the CRC catalogue) over type, seq and body. Control messages carry small
 JSON bodies; telemetry bodies are binary batches (see TELEMETRY_HEADER and TELEMETRY_SAMPLE).
 
@@ -98,7 +98,7 @@ class FrameError(ValueError):
     """A frame that cannot be decoded: bad COBS, too short, or a CRC mismatch."""
 
 
-# ---------------------------------------------------------------- CRC-16/IBM-3740
+# ---------------------------------------------------------------- CRC-16/CCITT-FALSE
 
 
 def _crc_table():
@@ -116,7 +116,7 @@ _CRC_TABLE = _crc_table()
 
 
 def crc16_table(data, crc=0xFFFF):
-    """CRC-16/IBM-3740 computed byte by byte from a 256-entry table (works everywhere)."""
+    """CRC-16/CCITT-FALSE computed byte by byte from a 256-entry table (works everywhere)."""
     table = _CRC_TABLE
     for byte in data:
         crc = ((crc << 8) & 0xFF00) ^ table[(crc >> 8) ^ byte]
@@ -146,10 +146,10 @@ _CRC_HIGH, _CRC_LOW = _crc_pair_tables()
 
 
 def crc16_pairs(data, crc=0xFFFF):
-    """CRC-16/IBM-3740 two bytes per interpreter step: about twice as fast as crc16_table
+    """CRC-16/CCITT-FALSE two bytes per interpreter step: about twice as fast as crc16_table
     where the CRC runs as bytecode (MicroPython). Needs a little-endian machine for its
     16-bit loads (every MicroPython hub is one; crc16 falls back to the table otherwise)."""
-    if type(data) is not bytes:
+    if type(data) is not bytes and type(data) is not bytearray:
         data = bytes(data)  # array() would take a memoryview item by item, not as 16-bit words
     n = len(data)
     even = n & ~1
@@ -231,10 +231,10 @@ def encode_frame(msg_type, seq, body=b""):
     size = 3 + len(body) + 2
     if size > MAX_RAW_BYTES:
         raise ValueError("frame of %d bytes exceeds the %d-byte cap" % (size, MAX_RAW_BYTES))
-    raw = bytearray(size)
+    raw = bytearray(size - 2)
     struct.pack_into("<BH", raw, 0, msg_type, seq & 0xFFFF)
-    raw[3 : size - 2] = body
-    struct.pack_into("<H", raw, size - 2, crc16(memoryview(raw)[: size - 2]))
+    raw[3:] = body
+    raw.extend(struct.pack("<H", crc16(raw)))  # the CRC reads raw itself, no copy of it
     return cobs_encode(raw) + b"\x00"
 
 

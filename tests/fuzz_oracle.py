@@ -23,7 +23,7 @@ import hub_side.listener as listener_module
 from hub_script.scripted_board import ScriptedBoard
 from hub_side import actions, wire
 
-# CRC-16/IBM-3740 is crcmod's "crc-ccitt-false" (CRC RevEng catalogue: poly 0x1021, init 0xFFFF,
+# CRC-16/CCITT-FALSE is crcmod's "crc-ccitt-false" (CRC RevEng catalogue: poly 0x1021, init 0xFFFF,
 # not reflected, no xorout; check value 0x29B1, checked in tests/test_wire.py).
 crc_ref = crcmod.predefined.mkCrcFun("crc-ccitt-false")
 

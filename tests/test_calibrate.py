@@ -483,6 +483,48 @@ def test_cli_turns_writes_both_scales_and_the_coast(monkeypatch, capsys, robot_f
     assert again.spin_offset_deg == pytest.approx(first.spin_offset_deg, abs=0.5)
 
 
+def test_cli_turns_leaves_out_an_offset_the_hub_would_refuse(monkeypatch, capsys, robot_file: Path) -> None:
+    # A hub from before the turn offsets reports no such keys in its hello: writing one would
+    # make that same hub refuse the next hello, so only the scales are written.
+    from harness.session import Session
+
+    hello = Session.hello
+
+    def older_hub(self, *args, **kwargs):
+        hub = hello(self, *args, **kwargs)
+        for key in ("spin_offset_deg", "pivot_offset_deg"):
+            hub.geometry.pop(key, None)
+        return hub
+
+    monkeypatch.setattr(Session, "hello", older_hub)
+    assert trackproof(["calibrate", "turns", "--robot", str(robot_file), "--modes", "spin", "--write"]) == 0
+    out = capsys.readouterr().out
+    assert "not written: spin_offset_deg = +1." in out and "update it (trackproof hub install) first" in out
+    profile = load_profile(robot_file)
+    assert profile.spin_scale == pytest.approx(1.053, rel=5e-3) and profile.spin_offset_deg == 0.0
+    assert "spin_offset_deg" not in robot_file.read_text()
+
+
+def test_offsets_outside_the_limits_are_not_written() -> None:
+    from harness.calibrate.turns import offset_not_writable
+
+    known = {"spin_offset_deg": 0.0, "pivot_offset_deg": 0.0}
+    assert offset_not_writable("spin_offset_deg", 29.99, known) == ""
+    assert "outside -30 to 30 deg" in offset_not_writable("spin_offset_deg", 30.01, known)
+    assert "outside -30 to 30 deg" in offset_not_writable("pivot_offset_deg", -31.0, known)
+    assert "does not know the key" in offset_not_writable("pivot_offset_deg", 1.0, {"spin_offset_deg": 0.0})
+
+
+def test_cli_turns_refuses_angles_within_the_profile_offset(capsys, robot_file: Path) -> None:
+    text = robot_file.read_text().replace("spin_scale = 1.0", "spin_scale = 1.0\nspin_offset_deg = 20.0", 1)
+    robot_file.write_text(text)
+    assert trackproof(["calibrate", "turns", "--robot", str(robot_file), "--angles", "15,90"]) == 2
+    assert "15 deg is within the profile's spin_offset_deg of 20 deg" in capsys.readouterr().err
+    # Pivots have their own offset (0 here): the same angles are fine for them alone.
+    assert trackproof(["calibrate", "turns", "--robot", str(robot_file), "--angles", "15,90",
+                       "--modes", "pivot_left", "--repeat", "1"]) == 0
+
+
 def test_cli_input_errors(monkeypatch, capsys, robot_file: Path) -> None:
     # --write without --robot: refused before anything moves; the bundled profile is never written.
     assert trackproof(["calibrate", "distance", "--write"]) == 2

@@ -2,7 +2,7 @@
 (hub_side/listener.py).
 
 The oracle lives in tests/fuzz_oracle.py (bench/fuzz.py uses it too). The decoder is checked
-against independent reference codecs (`cobs` for COBS, `crcmod` for CRC-16/IBM-3740): for any
+against independent reference codecs (`cobs` for COBS, `crcmod` for CRC-16/CCITT-FALSE): for any
 byte stream, cut into chunks anywhere, FrameReader must yield exactly the frames the reference
 finds and count exactly the pieces it drops, within HANG_LIMIT_S per feed.
 

@@ -188,8 +188,8 @@ except ImportError:
 print("crc16_is_pairs", wire.crc16 is wire.crc16_pairs)
 print("check %04x %04x" % (wire.crc16_pairs(b"123456789"), wire.crc16_table(b"123456789")))
 for case in CASES:
-    print("crc %04x %04x %04x" % (wire.crc16_pairs(case), wire.crc16_pairs(memoryview(case)[1:]),
-                                  wire.crc16_table(case)))
+    print("crc %04x %04x %04x %04x" % (wire.crc16_pairs(case), wire.crc16_pairs(memoryview(case)[1:]),
+                                       wire.crc16_pairs(bytearray(case)), wire.crc16_table(case)))
     enc = wire.cobs_encode(case)
     assert b"\\x00" not in enc
     assert wire.cobs_decode(enc) == case, case
@@ -205,14 +205,36 @@ def test_codec_crc_and_cobs_under_micropython() -> None:
     lines = run_micropython(script, [HUB_DIR]).splitlines()
     assert lines[0] == "crc_hqx absent"  # so the pair-table version below is the one the hub uses
     assert lines[1] == "crc16_is_pairs True"
-    # CRC-16/IBM-3740 check value for "123456789": 0x29B1, from Greg Cook's Catalogue of
+    # CRC-16/CCITT-FALSE check value for "123456789": 0x29B1, from Greg Cook's Catalogue of
     # parametrised CRC algorithms (https://reveng.sourceforge.io/crc-catalogue/16.htm).
     assert lines[2] == "check 29b1 29b1"
     # Identical CRCs and bytes to CPython's codec (which tests/test_wire.py checks against
     # references); the cases have odd and even lengths.
     expected = []
     for case in COBS_CASES:
-        expected.append("crc %04x %04x %04x" % (wire.crc16(case), wire.crc16(case[1:]), wire.crc16(case)))
+        expected.append("crc %04x %04x %04x %04x" % ((wire.crc16(case), wire.crc16(case[1:])) + (wire.crc16(case),) * 2))
         expected.append("cobs " + wire.cobs_encode(case).hex())
     assert lines[3:-1] == expected
     assert lines[-1] == "frame " + wire.encode_frame(wire.TELEMETRY, 0x1234, bytes(range(256))).hex()
+
+
+CLAMP_SCRIPT = """
+import binascii
+from hub_side import wire
+for args in CASES:
+    batch = wire.TelemetryBatch(1)
+    batch.add(1000, 0, 0, 0.0, 0.0, 0, 0, (50,))
+    batch.add(*(args + [(50,)]))
+    print(binascii.hexlify(batch.body(7000)).decode())
+"""
+
+
+def test_telemetry_clamps_each_field_alone_under_micropython() -> None:
+    # MicroPython's struct wraps out-of-range values silently, so there the range check in
+    # TelemetryBatch.add is all that keeps a value from turning into another one; the bodies
+    # must equal CPython's, which tests/test_wire.py decodes and checks field by field.
+    from test_wire import PAST_LIMITS, past_limit_args, past_limit_body
+
+    cases = [past_limit_args(field, value) for field, value, _ in PAST_LIMITS]
+    lines = run_micropython("CASES = %r\n%s" % (cases, CLAMP_SCRIPT), [HUB_DIR]).splitlines()
+    assert lines == [past_limit_body(args).hex() for args in cases]

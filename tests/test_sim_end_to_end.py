@@ -99,6 +99,12 @@ def test_turn_offsets_aim_encoder_turns_short_and_leave_gyro_turns_alone():
     # An offset as large as the angle leaves nothing to turn.
     none, none_deg = turned({"spin_offset_deg": 5.0}, 4.0)
     assert none.result["target_deg"] == 0.0 and abs(none_deg) < 0.2
+    # A negative offset (turns that stop short) aims further, either way; a turn of 0 stays 0.
+    longer, _ = turned({"spin_offset_deg": -3.0}, -90.0)
+    assert longer.result["target_deg"] == pytest.approx(plain.result["target_deg"] * 93.0 / 90.0, rel=1e-3)
+    for mode, key in (("spin", "spin_offset_deg"), ("pivot_left", "pivot_offset_deg")):
+        still, still_deg = turned({key: -5.0}, 0.0, mode=mode)
+        assert still.result["target_deg"] == 0.0 and abs(still_deg) < 0.2
     # Turns by the gyro stop on the gyro's own reading: the offset is for encoder turns only.
     gyro, _ = turned({}, 90.0, using="gyro")
     gyro_offset, _ = turned({"spin_offset_deg": 3.0}, 90.0, using="gyro")

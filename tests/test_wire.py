@@ -17,7 +17,7 @@ from hypothesis import strategies as st
 
 from hub_side import wire
 
-# CRC-16/IBM-3740 is crcmod's "crc-ccitt-false" (poly 0x1021, init 0xFFFF, not reflected, no xorout).
+# CRC-16/CCITT-FALSE is crcmod's "crc-ccitt-false" (poly 0x1021, init 0xFFFF, not reflected, no xorout).
 crc_ref = crcmod.predefined.mkCrcFun("crc-ccitt-false")
 
 MAX_BODY = wire.MAX_RAW_BYTES - 5  # raw frame = type u8 + seq u16 + body + crc u16
@@ -113,7 +113,7 @@ def streams_with_cuts(draw):
 # ---------------------------------------------------------------- CRC
 
 
-# Source: CRC RevEng catalogue (Greg Cook), CRC-16/IBM-3740 (alias CRC-16/CCITT-FALSE),
+# Source: CRC RevEng catalogue (Greg Cook), CRC-16/CCITT-FALSE,
 # check value for ASCII "123456789" = 0x29B1 (REFERENCES.md section 5).
 CRC_VERSIONS = [wire.crc16, wire.crc16_table, wire.crc16_pairs]
 CRC_IDS = ["crc16", "crc16_table", "crc16_pairs"]
@@ -126,7 +126,7 @@ def test_crc_catalogue_check_value(fn) -> None:
 
 def test_crc_reference_library_matches_catalogue() -> None:
     # Guards the choice of crcmod's name: "crc-ccitt" alone would be KERMIT in the catalogue.
-    # Source: CRC RevEng catalogue, CRC-16/IBM-3740 check 0x29B1 (REFERENCES.md section 5).
+    # Source: CRC RevEng catalogue, CRC-16/CCITT-FALSE check 0x29B1 (REFERENCES.md section 5).
     assert crc_ref(b"123456789") == 0x29B1
 
 
@@ -523,6 +523,43 @@ def test_telemetry_clamps_out_of_range_values() -> None:
     assert samples[2][0] == 100 + U16 * wire.TELEMETRY_DT_UNIT_US
     _, _, battery_mv, _, _ = wire.unpack_telemetry(batch.body(-1))
     assert battery_mv == 0
+
+
+# One field at a time just past its limit, the others in range: every comparison of add()'s
+# range check must catch its own field (MicroPython's struct would wrap it silently).
+# (field index in add()'s arguments, value just past the limit, what the sample then holds)
+IN_RANGE = (1_000, 5, -5, 1.5, -2.5, 40, -40)
+PAST_LIMITS = [
+    (0, 1_000 + 10 * (U16 + 1), 1_000 + 10 * U16), (0, 990, 1_000),  # dt past a u16, dt < 0
+    (1, I32 + 1, I32), (1, -I32 - 1, -I32), (2, I32 + 1, I32), (2, -I32 - 1, -I32),
+    (3, (I32 + 1) / wire.HEADING_SCALE, I32 / wire.HEADING_SCALE),
+    (3, -(I32 + 1) / wire.HEADING_SCALE, -I32 / wire.HEADING_SCALE),
+    (4, (I16 + 1) / wire.ERROR_SCALE, I16 / wire.ERROR_SCALE),
+    (4, -(I16 + 1) / wire.ERROR_SCALE, -I16 / wire.ERROR_SCALE),
+    (5, I8 + 1, I8), (5, -I8 - 1, -I8), (6, I8 + 1, I8), (6, -I8 - 1, -I8),
+]
+
+
+def past_limit_args(field: int, value: float) -> list[float]:
+    args = list(IN_RANGE)
+    args[field] = value
+    return args
+
+
+def past_limit_body(args: list[float]) -> bytes:
+    batch = wire.TelemetryBatch(1)
+    batch.add(1_000, 0, 0, 0.0, 0.0, 0, 0, (50,))  # sets the batch's first time
+    batch.add(*args, (50,))
+    return batch.body(7_000)
+
+
+@pytest.mark.parametrize(("field", "value", "held"), PAST_LIMITS)
+def test_telemetry_clamps_each_field_alone(field: int, value: float, held: float) -> None:
+    _, _, _, _, samples = wire.unpack_telemetry(past_limit_body(past_limit_args(field, value)))
+    sample = list(samples[1][:7])
+    expected = list(IN_RANGE)
+    expected[field] = held
+    assert sample == pytest.approx(expected)
 
 
 @pytest.mark.parametrize("n_sensors", [0, 4])

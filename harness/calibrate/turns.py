@@ -43,6 +43,7 @@ from harness.profile import RobotProfile
 from harness.robot import RobotConnector, open_real_link
 from harness.session import Session
 from harness.store import Store
+from hub_side.motion import GEOMETRY_LIMITS
 from harness.sim import truth_report, truth_snapshot
 
 MODES = ("spin", "pivot_left", "pivot_right")
@@ -291,6 +292,26 @@ def print_turns(cal: TurnCalibration, head: str) -> None:
 
 # ------------------------------------------------------------------ command
 
+def offset_key(mode: str) -> str:
+    return "spin_offset_deg" if mode == "spin" else "pivot_offset_deg"
+
+
+def profile_offset(profile: RobotProfile, mode: str) -> float:
+    return float(getattr(profile, offset_key(mode)))
+
+
+def offset_not_writable(key: str, value: float, hub_geometry: dict[str, float]) -> str:
+    """Why a recommended offset should not go into the profile ("" if it may): the hub that was
+    calibrated would refuse it in the next hello, or it is outside what any hub takes."""
+    if key not in hub_geometry:
+        return "this hub does not know the key and would refuse it; update it (trackproof hub install) first"
+    low, high = GEOMETRY_LIMITS[key]
+    if not low <= value <= high:
+        return (f"outside {low:g} to {high:g} deg; a coast that large points at the turn itself "
+                "(speed, slow_deg, brakes), not at an offset")
+    return ""
+
+
 def _modes(text: str) -> list[str]:
     modes = [m.strip() for m in text.split(",") if m.strip()]
     for mode in modes:
@@ -328,13 +349,17 @@ def cmd_turns(args: argparse.Namespace, ask: Ask = ask_operator,
     profile, connector = load_robot(args, open_link)
     for mode in modes:
         check_action("turn", turn_params(mode, max(angles), args.speed_pct), profile)
+        offset = profile_offset(profile, mode)
+        if angles[0] <= offset:
+            raise InputError(f"{angles[0]:g} deg is within the profile's {offset_key(mode)} of {offset:g} deg: "
+                             "the hub would not turn at all; use larger angles", key="--angles")
     plan = turn_plan(modes, angles, args.repeat)
     options = {"angles": angles, "modes": modes, "speed_pct": args.speed_pct, "repeat": args.repeat}
     with Store(args.db) as store, MoveLog(store, connector, "calibrate turns", options) as log:
         session = connector.connect()
         echo = (lambda s: None) if connector.sim is not None else (lambda s: print(s, flush=True))
+        hub = session.hub
         try:
-            hub = session.hub
             if hub is not None and hub.board.get("gyro") is False:
                 raise InputError(f"hub {hub.robot_id} reports no gyro: turns are measured with one", key="--link")
             confirm_real(session, f"About to turn {len(plan)} times in place ({', '.join(modes)}; "
@@ -356,7 +381,13 @@ def cmd_turns(args: argparse.Namespace, ask: Ask = ask_operator,
         for group, sf in cal.scales.items():
             values[f"{group}_scale"] = round(sf.scale, 5)
             if sf.writes_offset:
-                values[f"{group}_offset_deg"] = round(sf.recommended_offset_deg, 2)
+                key, offset = f"{group}_offset_deg", round(sf.recommended_offset_deg, 2)
+                skip = offset_not_writable(key, offset, hub.geometry if hub is not None else {})
+                if skip:
+                    print(f"not written: {key} = {offset:+.2f}: {skip}")
+                    report.setdefault("not_written", {})[key] = skip
+                else:
+                    values[key] = offset
         why = f"trackproof calibrate turns, {usable} turns over {args.link} at {args.speed_pct:g} %"
         write_profile_values(args.robot, values, why)
         report["written"] = {"file": str(args.robot), **values}
