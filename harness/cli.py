@@ -209,7 +209,7 @@ def cmd_show(args: argparse.Namespace) -> int:
                   f"link {info['link']}, seed {info['seed']}, {info['status']}, started {info['started_at']}")
     # A resumed session may hold an aborted try of a repetition and its redo: the last one counts.
     latest = {(o.case, o.repetition): o for o in stored_outcomes(runs, measurements)}
-    for case, judge_by, expect in stored_cases(info["suite_text"], list(runs["case_name"])):
+    for case, judge_by, expect in stored_cases(info["suite_text"], list(runs["case_name"]), info["link"]):
         outcomes = [o for (name, _), o in sorted(latest.items()) if name == case]
         stats, checks, case_verdict = judge_case(outcomes, judge_by, expect, len(outcomes))
         counts = Counter(o.status for o in outcomes)
@@ -343,7 +343,9 @@ def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        return args.func(args)
+        code = args.func(args)
+        sys.stdout.flush()  # a closed pipe shows here, inside the handlers, not at exit
+        return code
     except TrackproofError as exc:
         print(f"trackproof: error: {exc}", file=sys.stderr)
         return exc.exit_code

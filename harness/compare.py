@@ -109,7 +109,7 @@ def load_side(store: Store, uid: str) -> SessionSide:
     outcomes = stored_outcomes(runs, store.measurements(uid))
     latest = {(o.case, o.repetition): o for o in outcomes}
     cases = {name: (judge_by, expect)
-             for name, judge_by, expect in stored_cases(info["suite_text"], list(runs["case_name"]))}
+             for name, judge_by, expect in stored_cases(info["suite_text"], list(runs["case_name"]), info["link"])}
     values: dict[str, dict[str, dict[str, list[float]]]] = {}
     finished: dict[str, int] = {}
     units: dict[str, str] = {}
@@ -124,25 +124,29 @@ def load_side(store: Store, uid: str) -> SessionSide:
     arrays = {case: {source: {name: np.asarray(v, dtype=float) for name, v in metrics.items()}
                      for source, metrics in by_source.items()}
               for case, by_source in values.items()}
-    keep = ("suite_name", "robot_id", "link", "seed", "started_at", "status")
+    keep = ("suite_name", "suite_path", "robot_id", "link", "seed", "started_at", "status")
     return SessionSide(uid, {k: info[k] for k in keep}, cases, arrays, finished, units)
 
 
 def pick_sessions(store: Store, baseline: str | None, current: str | None, latest: bool) -> tuple[str, str]:
     """The two session uids to compare: as given (ids, unique prefixes, "latest"), or with
-    --latest the two most recent sessions of the latest session's suite."""
+    --latest the two most recent sessions of the latest suite run (of the latest calibration or
+    tuning command when no suite has run: their sessions have no suite file)."""
     if latest:
         if baseline or current:
             raise InputError("give either BASELINE and CURRENT or --latest, not both", key="compare")
         frame = store.sessions()
         if frame.empty:
             raise InputError(f"{store.path}: no sessions recorded yet", key="--latest")
-        suite = frame.iloc[0]["suite_name"]
-        same = frame[frame["suite_name"] == suite]
+        suites = frame[frame["suite_path"] != ""]
+        if not suites.empty:
+            frame = suites
+        name = frame.iloc[0]["suite_name"]
+        same = frame[frame["suite_name"] == name]
         if len(same) < 2:
-            raise InputError(f"{store.path}: only one session of suite {suite!r} (the latest, "
-                             f"{frame.iloc[0]['uid']}); --latest needs two. Run the suite again, or "
-                             "name both sessions", key="--latest")
+            again = "Run the suite again" if frame.iloc[0]["suite_path"] else f"Run trackproof {name} again"
+            raise InputError(f"{store.path}: only one session of {name!r} (the latest, {frame.iloc[0]['uid']}); "
+                             f"--latest needs two. {again}, or name both sessions", key="--latest")
         return str(same.iloc[1]["uid"]), str(same.iloc[0]["uid"])
     if not baseline or not current:
         raise InputError("give BASELINE and CURRENT (session ids, unique prefixes or latest), or --latest",
@@ -349,10 +353,10 @@ def _planned_text(comp: Comparison) -> str:
 
 def print_comparison(comp: Comparison, console: Console) -> None:
     b, c = comp.baseline, comp.current
-    console.print(f"baseline {b.uid}: suite {b.info['suite_name']}, robot {b.info['robot_id']}, "
-                  f"link {b.info['link']}, seed {b.info['seed']}, started {b.info['started_at']}")
-    console.print(f"current  {c.uid}: suite {c.info['suite_name']}, robot {c.info['robot_id']}, "
-                  f"link {c.info['link']}, seed {c.info['seed']}, started {c.info['started_at']}")
+    for label, side in (("baseline", b), ("current ", c)):
+        what = f"suite {side.info['suite_name']}" if side.info["suite_path"] else side.info["suite_name"]
+        console.print(f"{label} {side.uid}: {what}, robot {side.info['robot_id']}, "
+                      f"link {side.info['link']}, seed {side.info['seed']}, started {side.info['started_at']}")
     console.print(f"means by Welch's t-test, spreads by Brown-Forsythe, alpha {comp.alpha:g}; * p-values after "
                   "Holm's correction for the many tests; \"same\" needs enough runs to see a "
                   f"{SAME_MEAN_SD:g}-sd shift or a {SAME_SD_RATIO:g}x spread with {POWER:.0%} power "

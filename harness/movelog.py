@@ -14,6 +14,8 @@ already made.
 
 from __future__ import annotations
 
+import math
+from collections.abc import Callable
 from importlib.metadata import version
 from pathlib import Path
 from typing import Any
@@ -26,10 +28,13 @@ from harness.robot import RobotConnector
 from harness.runner import redact_secret
 from harness.session import RunRecord, Session
 from harness.sim import truth_report, truth_snapshot
-from harness.store import Store
+from harness.store import Store, record_while_failing
 from harness.suites import Step
 
-LINE_WIDTH_MM = 19.0  # for measurements that need the tape's width; moves made here use none
+# Measurements that need the tape's width (a probed stop's distance to the line's centre) are
+# left out: a calibration probes to a line's edge, and no suite says how wide the tape is.
+NO_LINE_WIDTH = math.nan
+
 
 
 class MoveLog:
@@ -48,22 +53,23 @@ class MoveLog:
         self._open = False
         self._repetitions: dict[str, int] = {}
 
-    def run(self, session: Session, case: str, action: str, params: dict[str, Any], **run_options: Any) -> RunRecord:
-        """session.run(action, params, **run_options), then the move stored; a move that ends in an
-        exception is stored too (link_lost or aborted) before the exception goes on."""
+    def run(self, session: Session, case: str, action: str, params: dict[str, Any],
+            explain: Callable[[RunRecord], str] | None = None, **run_options: Any) -> RunRecord:
+        """session.run(action, params, **run_options), then the move stored, with what `explain`
+        says of it in the run's note; a move that ends in an exception is stored too (fail,
+        link_lost or aborted) before the exception goes on."""
         if self.store is None or self.connector is None:
             return session.run(action, params, **run_options)
         sim = self.connector.sim
         before = truth_snapshot(sim) if sim is not None else None
         try:
             record = session.run(action, params, **run_options)
-        except HubRefused as exc:
-            self._store(case, action, params, "fail", None, None, note=str(exc))
-            raise
         except BaseException as exc:
-            lost = isinstance(exc, (LinkError, ProtocolError))
-            self._store(case, action, params, "link_lost" if lost else "aborted", None, None,
-                        note=f"{type(exc).__name__}: {exc}".rstrip(": "))
+            status = ("fail" if isinstance(exc, HubRefused) else
+                      "link_lost" if isinstance(exc, (LinkError, ProtocolError)) else "aborted")
+            # A store that fails now must not hide why the move failed: say so, raise the first.
+            record_while_failing(lambda: self._store(case, action, params, status, None, None,
+                                           note=f"{type(exc).__name__}: {exc}".rstrip(": ")))
             raise
         truth = truth_report(before, truth_snapshot(sim)) if before is not None and sim is not None else None
         if record.telemetry.dropped:
@@ -72,14 +78,15 @@ class MoveLog:
             status, note = "pass", ""
         else:
             status, note = "fail", f"{action} ended {record.status}"
-        self._store(case, action, params, status, record, truth, note=note)
+        said = explain(record) if explain is not None else ""
+        self._store(case, action, params, status, record, truth, note="; ".join(n for n in (note, said) if n))
         return record
 
     def close(self, finished: bool) -> None:
         """End the session: 'finished', or 'aborted' when the command stopped part way."""
         if self.store is not None and self.uid is not None and self._open:
-            self.store.end_session(self.uid, "finished" if finished else "aborted")
             self._open = False
+            self.store.end_session(self.uid, "finished" if finished else "aborted")
 
     def kept(self) -> str:
         """Where the moves went, for the end of a command's report."""
@@ -92,7 +99,10 @@ class MoveLog:
         return self
 
     def __exit__(self, exc_type: type[BaseException] | None, *rest: object) -> None:
-        self.close(exc_type is None)
+        if exc_type is None:
+            self.close(True)
+        else:
+            record_while_failing(lambda: self.close(False))
 
     # ------------------------------------------------------------ storing
 
@@ -121,6 +131,6 @@ class MoveLog:
         if record is None:
             self.store.finish_run(run_id, status, {}, [], [], None, note=note)
             return
-        measurements = measure_run((Step(action, params),), [record], [truth], LINE_WIDTH_MM)
+        measurements = measure_run((Step(action, params),), [record], [truth], NO_LINE_WIDTH)
         self.store.finish_run(run_id, status, {"steps": [record.result]}, list(record.events),
                               [m.as_tuple() for m in measurements], record.telemetry, note=note)

@@ -67,7 +67,11 @@ class RobotConnector:
         session = Session(link, watchdog_ms=profile.watchdog_ms, secret=profile.secret or None,
                           session_id=f"run-{self.seed}-{self.connections}")
         try:
-            session.hello(geometry=profile.geometry(), expect_robot_id=profile.id)
+            hub = session.hello(geometry=profile.geometry(), expect_robot_id=profile.id)
+            # Before anything moves: a reset routine the hub lacks would only show after the first run.
+            if self.sim is None and self.reset_routine and self.reset_routine not in hub.routines:
+                raise InputError(f"hub {hub.robot_id} has no routine {self.reset_routine!r} (it has: "
+                                 f"{', '.join(hub.routines) or 'none'})", key="--reset")
         except BaseException:
             session.close()
             raise

@@ -32,7 +32,7 @@ from harness.robot import RobotConnector, open_real_link
 from harness.measure import Measurement, measure_run, metrics_by_name
 from harness.session import RunRecord, Session
 from harness.sim import truth_report, truth_snapshot
-from harness.store import Store
+from harness.store import Store, record_while_failing
 from harness.suites import Case, Suite
 
 
@@ -296,9 +296,9 @@ class Runner:
             if missing:
                 status, note = "link_lost", f"telemetry incomplete: {missing} samples lost on the link"
         except BaseException as exc:
-            link_lost = isinstance(exc, (LinkError, ProtocolError))
-            self.store.finish_run(run_id, "link_lost" if link_lost else "aborted", {}, [], [], None,
-                                  note=f"{type(exc).__name__}: {exc}")
+            status = "link_lost" if isinstance(exc, (LinkError, ProtocolError)) else "aborted"
+            record_while_failing(lambda: self.store.finish_run(run_id, status, {}, [], [], None,
+                                                               note=f"{type(exc).__name__}: {exc}"))
             raise
         measurements = measure_run(case.steps[: len(records)], records, truths, self.suite.line_width_mm)
         result = {"steps": [r.result for r in records]}

@@ -29,6 +29,7 @@ import math
 import os
 import secrets
 import sqlite3
+import sys
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from datetime import datetime, timezone
@@ -148,6 +149,15 @@ _MIGRATIONS: dict[int, Callable[[sqlite3.Connection], None]] = {}
 
 
 # ---------------------------------------------------------------- small helpers
+
+
+def record_while_failing(step: Callable[[], None]) -> None:
+    """Run a store step while an exception is already on its way (a lost link, Ctrl-C): if the
+    step fails too, say so on stderr and let the first exception be the one the user sees."""
+    try:
+        step()
+    except Exception as exc:
+        print(f"trackproof: also failed to record this in the results store: {exc}", file=sys.stderr)
 
 
 def _now() -> str:

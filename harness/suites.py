@@ -164,13 +164,15 @@ def _step(t: Table, profile: RobotProfile, own_table: bool = True) -> Step:
     return Step(action, full)
 
 
-def stored_cases(text: str, run_cases: Sequence[str] = ()) -> list[tuple[str, str, dict[str, Any]]]:
+def stored_cases(text: str, run_cases: Sequence[str] = (), link: str = "") -> list[tuple[str, str, dict[str, Any]]]:
     """(name, judge_by, expectations) of each case in a suite's stored text, in order; the suite
     was validated when it ran, so this reads it without its profile or course files. A session
     that ran no suite (the moves of a calibration command) lists no cases: its cases are then
-    the case names of its runs (run_cases, in the order they ran), judged by the robot against
-    no expectations."""
+    the case names of its runs (run_cases, in the order they ran), with no expectations, judged
+    by truth when its link was the simulator (a drive's own encoder distance cannot show a wrong
+    distance_scale) and by the robot otherwise."""
     data = tomllib.loads(text)
     if "cases" not in data:
-        return [(name, "robot", {}) for name in dict.fromkeys(run_cases)]
+        judge_by = "truth" if link.split(":")[0] == "sim" else "robot"
+        return [(name, judge_by, {}) for name in dict.fromkeys(run_cases)]
     return [(c["name"], c.get("judge_by", "robot"), c.get("expect", {})) for c in data["cases"]]

@@ -226,7 +226,8 @@ def guarded_run(session: Session, params: dict[str, Any], guard: Guard, log: Mov
             session.stop_robot()
 
     return (log or MoveLog()).run(session, case, "follow_line", params, telemetry_hz=TELEMETRY_HZ,
-                                  on_telemetry=watch)
+                                  on_telemetry=watch, explain=lambda record: (
+                                      f"stopped by the guard: {guard.reason}" if guard.reason else ""))
 
 
 # ------------------------------------------------------------------ the procedure

@@ -513,7 +513,7 @@ def test_latest_needs_two_sessions_of_the_suite(tmp_path, monkeypatch, capsys):
         Runner(load_suite(tmp_path / "other.toml"), store, link="sim").run()
     assert compare_cli(["--latest", "--db", str(db)]) == 2
     err = capsys.readouterr().err
-    assert str(db) in err and "only one session of suite 'warm-up'" in err
+    assert str(db) in err and "only one session of 'warm-up'" in err
 
 
 def test_interrupted_runs_are_not_counted_and_a_case_without_runs_cannot_tell(tmp_path, monkeypatch, capsys):
