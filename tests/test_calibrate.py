@@ -614,6 +614,16 @@ def test_real_robot_operator_can_refuse_to_start(monkeypatch, robot_file: Path) 
         assert store.sessions().empty
 
 
+def test_a_reset_routine_the_hub_lacks_is_refused_before_anything_moves() -> None:
+    sim = Simulation(load_course(DEFAULT_COURSE), NOMINAL, seed=4)
+    before = sim.robot.travel_mm
+    connector = RobotConnector(NOMINAL, "serial:/dev/robot", reset_routine="drive_home",
+                               open_link=lambda spec, profile: SimLink(sim))
+    with pytest.raises(InputError, match="has no routine 'drive_home'") as exc:
+        connector.connect()
+    assert exc.value.key == "--reset" and sim.robot.travel_mm == before
+
+
 def test_a_hub_that_resets_itself_needs_no_operator() -> None:
     # Over a real link to a simulated hub (as `trackproof sim serve` offers), its sim_reset routine
     # puts the robot back between runs: the operator is never asked to.
