@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
 import sys
@@ -14,11 +15,13 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
 from harness.calibrate import add_calibrate_parser
+from harness.calibrate.common import whole_number
 from harness.compare import add_parser as add_compare_parser
 from harness.errors import InputError, TrackproofError
+from harness.jsonout import check_writable, write_text
 from harness.links import SimLink, parse_faults
 from harness.profile import load_profile
-from harness.report import print_report, write_json, write_junit
+from harness.report import print_report, why_runs_failed, write_json, write_junit
 from harness.operator import SAFETY_NOTE, OperatorStopped
 from harness.runner import Runner, judge_case, stored_outcomes
 from harness.session import Session
@@ -26,7 +29,7 @@ from harness.sim import DEFAULT_COURSE, DEFAULT_PROFILE, SUITES_DIR, Simulation,
 from harness.sim.course import load_course
 from harness.store import DEFAULT_DB, Store
 from harness.tuning import add_parser as add_tune_parser
-from harness.suites import load_suite, stored_cases
+from harness.suites import Suite, load_suite, stored_cases
 from hub_side.actions import BUILTINS
 from hub_side.motion import ParamError, check_params
 
@@ -79,6 +82,8 @@ def cmd_sim(args: argparse.Namespace) -> int:
     course = load_course(args.course or DEFAULT_COURSE)
     params = profile.action_defaults(args.action, parse_assignments(args.params))
     checked_action_params(args.action, params, tuple(profile.sensors))
+    if args.telemetry_csv:
+        check_writable(args.telemetry_csv)
     sim = Simulation(course, profile, seed=args.seed)
     session = Session(SimLink(sim), watchdog_ms=profile.watchdog_ms, session_id=f"sim-{args.seed}")
     session.hello(geometry=profile.geometry(), expect_robot_id=profile.id)
@@ -87,7 +92,7 @@ def cmd_sim(args: argparse.Namespace) -> int:
     truth = truth_report(before, truth_snapshot(sim))
     summary = record.telemetry.summary()
     if args.telemetry_csv:
-        record.telemetry.to_dataframe().to_csv(args.telemetry_csv, index=False)
+        write_text(args.telemetry_csv, record.telemetry.to_dataframe().to_csv(index=False))
     report = {
         "action": args.action,
         "params": params,
@@ -133,11 +138,18 @@ def print_sim_report(report: dict[str, Any]) -> None:
 
 def cmd_run(args: argparse.Namespace) -> int:
     suite = load_suite(args.suite)
+    # Refuse unwritable outputs now, not after the robot has run the whole suite.
+    for path in (args.json, args.junit):
+        if path:
+            check_writable(path)
     console = Console(stderr=False, highlight=False)
     with Store(args.db) as store:
         resume = store.resolve_session(args.resume) if args.resume else None
+        seed = args.seed
+        if resume is not None:
+            seed = check_resumable(store.session(resume), suite, args.seed)
         faults = parse_faults(args.link_faults) if args.link_faults else None
-        runner = Runner(suite, store, link=args.link, faults=faults, repeat=args.repeat, seed=args.seed,
+        runner = Runner(suite, store, link=args.link, faults=faults, repeat=args.repeat, seed=seed,
                         confirm=not args.yes)
         with Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
                       TextColumn("{task.fields[counts]}"), TimeRemainingColumn(),
@@ -154,12 +166,16 @@ def cmd_run(args: argparse.Namespace) -> int:
             except OperatorStopped:
                 print("trackproof: not started; nothing moved", file=sys.stderr)
                 return 130
-    print_report(report, console)
+    # Files first: a reader that leaves early (| head) must not cost them.
     if args.json:
         write_json(report, args.json)
     if args.junit:
         write_junit(report, args.junit)
-    resume_hint = f"  trackproof run {args.suite} --db {args.db} --link {args.link} --resume {report.uid}"
+    print_report(report, console)
+    again = "".join(f" {flag} {value}" for flag, value in (
+        ("--repeat", args.repeat), ("--link-faults", args.link_faults)) if value is not None)
+    resume_hint = (f"  trackproof run {args.suite} --db {args.db} --link {args.link}{again} "
+                   f"--resume {report.uid}")
     if report.status == "aborted":
         print(f"trackproof: interrupted; finished runs are kept in {args.db}. Resume with:\n{resume_hint}",
               file=sys.stderr)
@@ -169,6 +185,17 @@ def cmd_run(args: argparse.Namespace) -> int:
               f"{resume_hint}", file=sys.stderr)
         return 3
     return 0 if report.passed else 1
+
+
+def check_resumable(info: dict[str, Any], suite: Suite, seed: int | None) -> int | None:
+    """A session is resumed only with the suite it ran, unchanged; the seed is the session's
+    unless another is given. Returns the seed to run with."""
+    if info["suite_sha256"] != hashlib.sha256(suite.text.encode("utf-8")).hexdigest():
+        what = (f"suite {info['suite_name']!r} ({info['suite_path']})" if info["suite_path"]
+                else f"`trackproof {info['suite_name']}`")
+        raise InputError(f"session {info['uid']} recorded {what}, not this suite as it is now; resume it "
+                         "with the same, unchanged suite file", file=str(suite.path), key="--resume")
+    return seed if seed is not None else info["seed"]
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -224,6 +251,8 @@ def cmd_show(args: argparse.Namespace) -> int:
                     console.print(f"  {source:5} {name:18} n={s['n']:3} rp={_num(s['rp'])}")
         for check in checks:
             console.print(f"  {'ok  ' if check.passed else 'FAIL'} {check.text}")
+        for line in why_runs_failed(outcomes):
+            console.print(f"  {line}", markup=False)
     return 0
 
 
@@ -306,7 +335,7 @@ def build_parser() -> argparse.ArgumentParser:
                      help="damage the link on purpose, e.g. corrupt=0.05,drop=0.02 (see docs/links.md)")
     run.add_argument("--yes", action="store_true",
                      help="start on real hardware without asking (unattended runs; the robot still moves)")
-    run.add_argument("--repeat", type=int, help="runs per case (overrides the suite)")
+    run.add_argument("--repeat", type=whole_number(1), help="runs per case (overrides the suite)")
     run.add_argument("--seed", type=int, help="simulator seed (overrides the suite)")
     run.add_argument("--resume", metavar="SESSION", help="continue an interrupted session")
     add_outputs(run)

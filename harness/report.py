@@ -17,7 +17,8 @@ from typing import Any
 from rich.console import Console
 from rich.table import Table
 
-from harness.runner import SessionReport
+from harness.jsonout import write_text
+from harness.runner import RunOutcome, SessionReport
 
 
 def summary_dict(report: SessionReport) -> dict[str, Any]:
@@ -49,7 +50,7 @@ def summary_dict(report: SessionReport) -> dict[str, Any]:
 
 
 def write_json(report: SessionReport, path: Path) -> None:
-    path.write_text(json.dumps(summary_dict(report), indent=2) + "\n", encoding="utf-8")
+    write_text(path, json.dumps(summary_dict(report), indent=2) + "\n")
 
 
 def write_junit(report: SessionReport, path: Path) -> None:
@@ -75,7 +76,21 @@ def write_junit(report: SessionReport, path: Path) -> None:
     root = ET.Element("testsuites", name="trackproof")
     root.append(suite)
     ET.indent(root)
-    path.write_bytes(ET.tostring(root, encoding="utf-8", xml_declaration=True))
+    write_text(path, ET.tostring(root, encoding="unicode", xml_declaration=True))
+
+
+def why_runs_failed(runs: list[RunOutcome], most: int = 3) -> list[str]:
+    """Why runs did not pass, each reason once with the runs it hit, so a failing case says why
+    without --json."""
+    reasons: dict[str, list[int]] = {}
+    for run in runs:
+        if run.status != "pass":
+            reasons.setdefault(f"{run.status}: {run.note}" if run.note else run.status, []).append(run.repetition)
+    lines = [f"run{'s' if len(reps) > 1 else ''} {', '.join(map(str, reps[:6]))}{' ...' if len(reps) > 6 else ''}: "
+             f"{reason}" for reason, reps in list(reasons.items())[:most]]
+    if len(reasons) > most:
+        lines.append(f"... and {len(reasons) - most} other reasons (see --json)")
+    return lines
 
 
 def _fmt(value: Any, digits: int = 2) -> str:
@@ -86,10 +101,12 @@ def print_report(report: SessionReport, console: Console) -> None:
     for case in report.cases:
         source = case.case.judge_by
         counts = {s: sum(r.status == s for r in case.runs) for s in ("pass", "fail", "aborted", "link_lost")}
-        title = (f"{case.case.name}: {case.verdict.upper()}  "
-                 f"({counts['pass']} pass, {counts['fail']} fail"
-                 + (f", {counts['aborted']} aborted" if counts["aborted"] else "")
-                 + f"; judged by {source})")
+        shown = [f"{n} {status}" for status, n in counts.items() if n or status in ("pass", "fail")]
+        missing = case.expected_runs - len(case.runs)
+        if missing:
+            shown.append(f"{missing} not run" if case.runs else "not run")
+        verdict = case.verdict.upper() if case.runs else "NOT RUN"
+        title = f"{case.case.name}: {verdict}  ({', '.join(shown)}; judged by {source})"
         table = Table(title=title, title_justify="left", show_edge=False)
         for column in ("metric", "source", "n", "mean", "sd", "range", "95% CI ±", "RP"):
             table.add_column(column, justify="left" if column in ("metric", "source") else "right")
@@ -101,10 +118,15 @@ def print_report(report: SessionReport, console: Console) -> None:
                 half = None if s.get("ci95_low") is None else (s["ci95_high"] - s["ci95_low"]) / 2
                 table.add_row(name, src, str(s["n"]), _fmt(s["mean"]), _fmt(s["sd"]), _fmt(s["range"]),
                               _fmt(half), _fmt(s.get("rp")))
-        console.print(table)
+        if case.stats:
+            console.print(table)
+        else:
+            console.print(title, highlight=False, markup=False)
         for check in case.checks:
             mark = "[green]ok[/green]  " if check.passed else "[red]FAIL[/red]"
             console.print(f"  {mark} {check.text}", highlight=False)
+        for line in why_runs_failed(case.runs):
+            console.print(f"  {line}", highlight=False, markup=False)
         console.print()
     verdicts = [c.verdict for c in report.cases]
     console.print(f"session {report.uid}: {verdicts.count('pass')} of {len(verdicts)} cases passed"

@@ -224,6 +224,11 @@ class Runner:
                             lost_session, self.session = self.session, None
                             self.session = self.robot.reconnect(lost_session, lost)
                             continue
+                        except (KeyboardInterrupt, OperatorStopped) as stop:
+                            # Stored as aborted by _one_run; the report shows it the same way.
+                            report.runs.append(RunOutcome(case.name, rep, "aborted", [],
+                                                          f"{type(stop).__name__}: {stop}".rstrip(": ")))
+                            raise
                     report.runs.append(outcome)
                     if outcome.status in counts:
                         counts[outcome.status] += 1

@@ -39,7 +39,8 @@ class Table:
         self.data = data
         self.file = file
         self.path = path
-        self._used: set[str] = set()
+        self._used: set[str] = set()  # read: a key never read is a typo
+        self._asked: set[str] = set()  # looked for, present or not: the keys to suggest
 
     def key_path(self, key: str) -> str:
         return f"{self.path}.{key}" if self.path else key
@@ -48,10 +49,12 @@ class Table:
         return InputError(message, file=self.file, key=self.key_path(key))
 
     def has(self, key: str) -> bool:
+        self._asked.add(key)
         return key in self.data
 
     def _get(self, key: str, default: Any) -> Any:
         self._used.add(key)
+        self._asked.add(key)
         if key in self.data:
             return self.data[key]
         if default is _MISSING:
@@ -130,5 +133,5 @@ class Table:
         """Refuse any key that was never read: a typo must not pass silently."""
         unknown = sorted(set(self.data) - self._used)
         if unknown:
-            known = ", ".join(sorted(self._used)) or "none"
+            known = ", ".join(sorted(self._used | self._asked)) or "none"
             raise self.error(unknown[0], f"unknown key (known here: {known})")

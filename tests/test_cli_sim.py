@@ -95,6 +95,12 @@ def test_a_reader_that_goes_away_is_no_traceback(tmp_path, unbuffered):
                                               capture_output=True, text=True, timeout=60).stdout
 
 
+def test_an_unwritable_telemetry_csv_is_refused_before_the_move(tmp_path, capsys):
+    assert main(["sim", "turn", "angle_deg=90", "--telemetry-csv", str(tmp_path / "no" / "t.csv")]) == 2
+    err = capsys.readouterr().err
+    assert f"folder {tmp_path / 'no'} does not exist" in err and "Traceback" not in err
+
+
 def test_values_parse_as_numbers_flags_and_lists():
     assert parse_value("3") == 3 and parse_value("2.5") == 2.5
     assert parse_value("true") is True and parse_value("left,right") == ["left", "right"]

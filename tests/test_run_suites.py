@@ -131,6 +131,38 @@ def test_bad_profile_names_file_and_key(tmp_path, capsys, good, bad, message):
     assert f"{profile}: {message}" in err
 
 
+def test_a_failing_case_says_why_in_the_terminal(tmp_path, capsys):
+    suite = write_suite(tmp_path, "repeat = 2\n[[cases]]\nname = 'x'\nroutine = 'nosuch'\n")
+    assert main(["run", str(suite), "--db", str(tmp_path / "r.sqlite")]) == 1
+    out = capsys.readouterr().out
+    assert "x: FAIL  (0 pass, 2 fail;" in out
+    assert "runs 1, 2: fail: hub refused (unknown_action): no action or routine 'nosuch'" in out
+    assert main(["show", "latest", "--db", str(tmp_path / "r.sqlite")]) == 0
+    assert "runs 1, 2: fail: hub refused (unknown_action)" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("where, message", [("missing/out", "folder {tmp}/missing does not exist"),
+                                             ("", "is a folder; give a file name")])
+@pytest.mark.parametrize("option", ["--json", "--junit"])
+def test_unwritable_reports_are_refused_before_the_robot_moves(tmp_path, capsys, where, message, option):
+    suite = write_suite(tmp_path, "[[cases]]\nname = 'x'\naction = 'stop'\n")
+    db = tmp_path / "r.sqlite"
+    assert main(["run", str(suite), "--db", str(db), option, str(tmp_path / where)]) == 2
+    err = capsys.readouterr().err
+    assert message.format(tmp=tmp_path) in err and "Traceback" not in err
+    assert not db.exists()  # refused before the store was even opened
+
+
+def test_an_unknown_key_lists_every_key_allowed_there(tmp_path, capsys):
+    # Keys the file leaves out count too: `seed` is optional and must be suggested for `reeset`.
+    suite = write_suite(tmp_path, "reeset = 3\n[[cases]]\nname = 'x'\naction = 'stop'\n")
+    assert main(["run", str(suite), "--db", str(tmp_path / "r.sqlite")]) == 2
+    err = capsys.readouterr().err
+    assert "reeset: unknown key (known here: " in err
+    for key in ("repeat", "reset", "seed", "telemetry_hz", "line_width_mm"):
+        assert key in err.split("known here: ")[1]
+
+
 def test_geometry_sends_newer_keys_only_when_set():
     # A hub from before wheel_ratio and the turn offsets refuses a hello that names them, so a
     # profile that leaves them at the hub's defaults does not send them.
@@ -153,7 +185,8 @@ def test_a_missing_serial_port_is_a_clear_link_error(tmp_path, capsys):
 def test_ctrl_c_keeps_finished_runs_and_the_session_resumes(tmp_path, capsys, monkeypatch):
     from harness.session import Session
 
-    suite = write_suite(tmp_path, "repeat = 4\n[[cases]]\nname = 'turn'\naction = 'turn'\nparams = { angle_deg = 45 }\n")
+    suite = write_suite(tmp_path, "repeat = 4\n[[cases]]\nname = 'turn'\naction = 'turn'\nparams = { angle_deg = 45 }\n"
+                                  "[[cases]]\nname = 'later'\naction = 'stop'\n")
     db = tmp_path / "r.sqlite"
     real_run = Session.run
     calls = {"n": 0}
@@ -165,19 +198,29 @@ def test_ctrl_c_keeps_finished_runs_and_the_session_resumes(tmp_path, capsys, mo
         return real_run(self, *args, **kwargs)
 
     monkeypatch.setattr(Session, "run", interrupted)
-    assert main(["run", str(suite), "--db", str(db)]) == 130
-    err = capsys.readouterr().err
-    assert "--resume" in err
+    assert main(["run", str(suite), "--db", str(db), "--repeat", "4"]) == 130
+    out, err = capsys.readouterr()
+    assert "--resume" in err and "--repeat 4 --resume" in err  # the printed command runs the same plan
+    # The interrupted case says what happened to each run, the untouched one that it never ran.
+    assert "turn: FAIL  (2 pass, 0 fail, 1 aborted, 1 not run;" in out
+    assert "run 3: aborted: KeyboardInterrupt" in out
+    assert "later: NOT RUN  (0 pass, 0 fail, not run;" in out
     with Store(db, readonly=True) as store:
         uid = store.resolve_session("latest")
         assert store.session(uid)["status"] == "aborted"
         assert list(store.runs(uid)["status"]) == ["pass", "pass", "aborted"]
     monkeypatch.setattr(Session, "run", real_run)
+    # Only with the suite it ran: another suite (or this one edited) is refused, nothing added.
+    other = write_suite(tmp_path, "[[cases]]\nname = 'x'\naction = 'stop'\n", name="other.toml")
+    assert main(["run", str(other), "--db", str(db), "--resume", uid]) == 2
+    assert f"session {uid} recorded suite" in capsys.readouterr().err
     assert main(["run", str(suite), "--db", str(db), "--resume", uid]) == 0
     with Store(db, readonly=True) as store:
         runs = store.runs(uid)
         assert store.session(uid)["status"] == "finished"
-    assert sorted(runs[runs["status"] == "pass"]["repetition"]) == [1, 2, 3, 4]
+    passed = runs[runs["status"] == "pass"]
+    for case in ("turn", "later"):
+        assert sorted(passed[passed["case_name"] == case]["repetition"]) == [1, 2, 3, 4]
 
 
 def test_sigkill_of_the_runner_loses_no_finished_run(tmp_path):
@@ -241,5 +284,5 @@ def test_operator_reset_prompts_and_skip_and_quit(tmp_path):
         runs = store.runs(report.uid)
     assert len(prompts) == 3 and "Enter to go, s to skip, q to quit" in prompts[0]
     assert report.status == "aborted"
-    assert [r.status for r in report.cases[0].runs] == ["pass", "aborted"]
+    assert [r.status for r in report.cases[0].runs] == ["pass", "aborted", "aborted"]  # as stored
     assert list(runs["status"]) == ["pass", "aborted", "aborted"]

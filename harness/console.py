@@ -1,0 +1,18 @@
+"""The `trackproof` command's entry point.
+
+Loading the program takes about a second (numpy, pandas, scipy); Ctrl-C in that second ends it
+with exit 130 and one line, as it does later, instead of a traceback through the imports.
+"""
+
+from __future__ import annotations
+
+import sys
+
+
+def main() -> int:
+    try:
+        from harness.cli import main as run_command
+    except KeyboardInterrupt:
+        print("trackproof: interrupted while starting; nothing ran", file=sys.stderr)
+        return 130
+    return run_command()
