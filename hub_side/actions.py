@@ -269,7 +269,12 @@ def turn(ctx, p):
         ctx.set_power(left_pct, right_pct)
         yield
     yield from settle(ctx)
-    return {"target_deg": round(target, 2)}
+    # target_deg: the heading change aimed for (after any offset); by the encoders also the
+    # moving wheels' mean motor-degree target it stood for.
+    out = {"target_deg": round(abs(angle), 2)}
+    if not use_gyro:
+        out["target_motor_deg"] = round(target, 2)
+    return out
 
 
 def drive_straight(ctx, p):

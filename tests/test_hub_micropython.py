@@ -111,7 +111,7 @@ def test_the_script_really_exercised_the_hub(outputs: tuple[str, str]) -> None:
     assert abs(turn["heading_change_deg"] - 90) < 5
     # The hello's spin_offset_deg of 1.5 aims the turn at 88.5 deg: 2 motor degrees per degree
     # of heading with this geometry (track / wheel diameter = 112 / 56).
-    assert turn["target_deg"] == 177.0
+    assert turn["target_deg"] == 88.5 and turn["target_motor_deg"] == 177.0
     assert abs(drive["distance_mm"] - 150) < 5
     assert 0 < stopped["distance_mm"] < 2000
     # Silence past the second hello's 300 ms watchdog stopped the robot with a fault.

@@ -88,20 +88,23 @@ def test_turn_offsets_aim_encoder_turns_short_and_leave_gyro_turns_alone():
     # The encoder target shrinks by the offset's share of the angle (87 of 90 degrees), and the
     # robot turns about 3 degrees less: 2.85 at the practice robot's true spin scale (it turns
     # 1 / 1.053 of what the profile expects), give or take one turn's slip and noise.
-    assert short.result["target_deg"] == pytest.approx(plain.result["target_deg"] * 87.0 / 90.0, rel=1e-3)
+    assert (short.result["target_deg"], plain.result["target_deg"]) == (87.0, 90.0)
+    assert short.result["target_motor_deg"] == pytest.approx(plain.result["target_motor_deg"] * 87.0 / 90.0, rel=1e-3)
     assert plain_deg - short_deg == pytest.approx(3.0 / 1.053, abs=0.75)
     # Counter-clockwise alike; a pivot takes pivot_offset_deg and ignores spin_offset_deg.
     _, ccw_deg = turned({"spin_offset_deg": 3.0}, -90.0)
     assert ccw_deg == pytest.approx(-short_deg, abs=0.5)
     pivot, _ = turned({"spin_offset_deg": 3.0}, 90.0, mode="pivot_right")
     pivot_short, _ = turned({"pivot_offset_deg": 3.0}, 90.0, mode="pivot_right")
-    assert pivot_short.result["target_deg"] == pytest.approx(pivot.result["target_deg"] * 87.0 / 90.0, rel=1e-3)
+    assert pivot_short.result["target_motor_deg"] == pytest.approx(pivot.result["target_motor_deg"] * 87.0 / 90.0,
+                                                                   rel=1e-3)
     # An offset as large as the angle leaves nothing to turn.
     none, none_deg = turned({"spin_offset_deg": 5.0}, 4.0)
-    assert none.result["target_deg"] == 0.0 and abs(none_deg) < 0.2
+    assert none.result["target_deg"] == none.result["target_motor_deg"] == 0.0 and abs(none_deg) < 0.2
     # A negative offset (turns that stop short) aims further, either way; a turn of 0 stays 0.
     longer, _ = turned({"spin_offset_deg": -3.0}, -90.0)
-    assert longer.result["target_deg"] == pytest.approx(plain.result["target_deg"] * 93.0 / 90.0, rel=1e-3)
+    assert longer.result["target_deg"] == 93.0
+    assert longer.result["target_motor_deg"] == pytest.approx(plain.result["target_motor_deg"] * 93.0 / 90.0, rel=1e-3)
     for mode, key in (("spin", "spin_offset_deg"), ("pivot_left", "pivot_offset_deg")):
         still, still_deg = turned({key: -5.0}, 0.0, mode=mode)
         assert still.result["target_deg"] == 0.0 and abs(still_deg) < 0.2
@@ -109,6 +112,7 @@ def test_turn_offsets_aim_encoder_turns_short_and_leave_gyro_turns_alone():
     gyro, _ = turned({}, 90.0, using="gyro")
     gyro_offset, _ = turned({"spin_offset_deg": 3.0}, 90.0, using="gyro")
     assert gyro_offset.result["target_deg"] == gyro.result["target_deg"] == 90.0
+    assert "target_motor_deg" not in gyro.result
 
 
 def test_pivot_turns_about_the_stopped_wheel():
