@@ -33,6 +33,7 @@ from collections.abc import Sequence
 from typing import Any
 
 from harness.analysis import validate_expectations
+from harness.analysis.verdicts import MEASURED_METRICS, metric_base
 from harness.errors import InputError
 from harness.profile import RobotProfile, load_profile
 from harness.tomlfile import Table, parse_toml, read_text
@@ -138,6 +139,12 @@ def _case(t: Table, profile: RobotProfile, repeat: int, reset: str) -> Case:
         problems = validate_expectations(expect)
         if problems:
             raise InputError(problems[0], file=t.file, key=expect_t.path)
+        if not any(step.routine for step in steps):  # a routine may report metrics of its own
+            for metric in expect:
+                if metric_base(metric) not in MEASURED_METRICS:
+                    raise expect_t.error(metric, f"no run measures {metric!r} (measured: "
+                                                 f"{', '.join(MEASURED_METRICS[:-1])}, and a spread such "
+                                                 "as stop_spread_mm or turn_spread_deg)")
     t.done()
     return Case(name, steps, case_repeat, case_reset, judge_by, expect)
 

@@ -84,6 +84,10 @@ BAD_SUITES = [
     ("[[cases]]\nname = 'x'\nrepeat = -2\naction = 'stop'\n", "cases[0].repeat: must be at least 1"),
     ("[[cases]]\nname = 'x'\naction = 'stop'\nreset = 'magic'\n", "cases[0].reset: expected sim, operator or routine:NAME"),
     ("[[cases]]\nname = 'x'\naction = 'stop'\ncolour = 'red'\n", "cases[0].colour: unknown key"),
+    ("[[cases]]\nname = 'x'\naction = 'stop'\nexpect = { angel_error_deg = { max = 3 } }\n",
+     "cases[0].expect.angel_error_deg: no run measures 'angel_error_deg'"),
+    ("[[cases]]\nname = 'x'\naction = 'stop'\nexpect = { stop_sprad_mm = { max = 3 } }\n",
+     "no run measures 'stop_sprad_mm'"),
     ("[[cases]]\nname = 'x'\naction = 'stop'\n[[cases]]\nname = 'x'\naction = 'stop'\n", "case name 'x' is used twice"),
     ("[[cases]]\nname = 'x'\naction = 'stop'\nexpect = { stop_mm = { near = 3 } }\n", "near"),
     ("[[cases]]\nname = 'x'\naction = 'stop'\nexpect = { stop_mm = { mean_within = [9, 1] } }\n", "mean_within"),
@@ -151,6 +155,17 @@ def test_unwritable_reports_are_refused_before_the_robot_moves(tmp_path, capsys,
     err = capsys.readouterr().err
     assert message.format(tmp=tmp_path) in err and "Traceback" not in err
     assert not db.exists()  # refused before the store was even opened
+
+
+def test_expectations_on_spreads_and_on_a_routine_s_own_metrics_load(tmp_path):
+    from harness.suites import load_suite
+
+    suite = write_suite(tmp_path, "[[cases]]\nname = 'a'\naction = 'turn'\nparams = { angle_deg = 90 }\n"
+                                  "expect = { turn_spread_deg = { max = 3 }, stop_spread_2d_mm = { max = 9 } }\n"
+                                  "[[cases]]\nname = 'b'\nroutine = 'square'\n"
+                                  "expect = { corner_gap_mm = { max = 5 } }\n")
+    assert [sorted(case.expect) for case in load_suite(suite).cases] == [
+        ["stop_spread_2d_mm", "turn_spread_deg"], ["corner_gap_mm"]]
 
 
 def test_an_unknown_key_lists_every_key_allowed_there(tmp_path, capsys):

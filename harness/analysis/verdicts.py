@@ -112,6 +112,19 @@ def _is_spread_name(metric: str) -> bool:
     return _spread_base(metric) is not None
 
 
+# Every metric harness.measure gives a built-in action's run (routines add their own), and the
+# 2-D stop position the statistics build from stop_x_mm and stop_y_mm.
+MEASURED_METRICS = ("stop_mm", "edge_mm", "overrun_mm", "turn_deg", "angle_error_deg", "angle_error_abs_deg",
+                    "distance_mm", "heading_drift_deg", "error_rms_pct", "duration_s", "stop_x_mm",
+                    "stop_y_mm", "stop_xy_mm")
+
+
+def metric_base(metric: str) -> str:
+    """The measured metric an expectation reads: itself, or a spread's base (stop_spread_mm -> stop_mm)."""
+    spread = _spread_base(metric)
+    return spread[0] if spread is not None else metric
+
+
 # ---------------------------------------------------------------------------------------------
 # Validation
 
