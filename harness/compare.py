@@ -405,9 +405,9 @@ def cmd_compare(args: argparse.Namespace) -> int:
         raise InputError(f"sessions {base_uid} and {cur_uid} have no case in common (baseline: "
                          f"{', '.join(base.cases) or 'none'}; current: {', '.join(cur.cases) or 'none'})",
                          key="compare")
-    print_comparison(comp, Console(highlight=False))
-    if args.json:
+    if args.json:  # before the terminal report: a reader that leaves early must not cost the file
         write_comparison_json(comp, args.json)
+    print_comparison(comp, Console(highlight=False))
     return 1 if comp.any_worse else 0
 
 

@@ -13,7 +13,7 @@ params)`, and returns a dict of what it measured.
 from hub_side import auth, wire
 from hub_side.actions import BUILTINS
 from hub_side.board import ticks_diff
-from hub_side.motion import (DEFAULT_GEOMETRY, GEOMETRY_LIMITS, ParamError, check_params, clip,
+from hub_side.motion import (DEFAULT_GEOMETRY, GEOMETRY_LIMITS, MESSAGE_CHARS, ParamError, check_params, clip,
                              is_finite_number, is_whole, shown, travel_factors, travel_from)
 
 MAX_TELEMETRY_HZ = 500
@@ -237,7 +237,7 @@ class Listener:
             self._finish("done", result)
             return
         except Exception as exc:  # an action or routine failed: stop, report, keep serving
-            self._finish("error", None, ("action_error", clip("%s: %s" % (type(exc).__name__, exc))))
+            self._finish("error", None, ("action_error", clip("%s: %s" % (type(exc).__name__, exc), MESSAGE_CHARS)))
             return
         if self.t_us > self._timeout_us:
             self.send_event("timeout", {"after_s": self._timeout_us / 1e6})
@@ -380,7 +380,7 @@ class Listener:
             self.power = (0, 0)
             self.contexts = []
             code = "bad_param" if isinstance(exc, ValueError) else "action_error"
-            return (code, clip(str(exc)))
+            return (code, clip(str(exc), MESSAGE_CHARS))
         self._gen = gen
         self._pending_result = None
         return None

@@ -42,11 +42,12 @@ GEOMETRY_LIMITS = {
     "pivot_offset_deg": (-30.0, 30.0),
 }
 _SHOWN_CHARS = 40  # host text echoed in an error is cut here, so a refusal always fits its frame
+MESSAGE_CHARS = 200  # a whole error message (which may echo host text) is cut here
 
 
-def clip(text):
+def clip(text, chars=_SHOWN_CHARS):
     """Host text cut short: errors echo what the host sent without letting it grow the reply."""
-    return text if len(text) <= _SHOWN_CHARS else text[: _SHOWN_CHARS - 3] + "..."
+    return text if len(text) <= chars else text[: chars - 3] + "..."
 
 
 def shown(value):

@@ -52,6 +52,8 @@ def test_sim_turn_prints_a_readable_report(capsys):
     (["sim", "turn", "angle_deg"], "expected key=value"),
     (["sim", "probe_edge", "sensor=nose"], "unknown sensor 'nose'"),
     (["sim", "turn", "angle_deg=90", "--course", "no/such/course.toml"], "no/such/course.toml: file not found"),
+    # The hub's own message, whole (only text echoed from the host is cut short).
+    (["sim", "follow_line"], "follow_line needs distance_mm, junctions or time_s"),
 ])
 def test_bad_input_is_one_clear_line_and_exit_code_2(capsys, args, message):
     code, out, err = run_cli(capsys, *args)
