@@ -394,6 +394,11 @@ class Store:
     def _connect(self) -> sqlite3.Connection:
         # A URI so that no file name (":memory:", names with "?") is taken for anything but a path.
         uri = self.path.resolve().as_uri() + ("?mode=ro" if self.readonly else "?mode=rwc")
+        if self.readonly and not os.access(self.path.parent, os.W_OK):
+            # A read-only folder (a results file on a read-only mount, or shared): SQLite cannot
+            # make the WAL's shared-memory file beside it, so read the file as it stands. No
+            # writer can be recording there, as it could not make its journal either.
+            uri += "&immutable=1"
         # isolation_level=None: this module issues BEGIN/COMMIT itself, so transaction borders are
         # exactly where the code says.
         conn = sqlite3.connect(uri, uri=True, isolation_level=None, timeout=_BUSY_TIMEOUT_S)

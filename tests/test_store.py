@@ -74,6 +74,21 @@ def db(tmp_path: Path) -> Path:
 # ---------------------------------------------------------------- round trips
 
 
+def test_a_results_file_in_a_read_only_folder_can_be_read(db: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # As root (CI) a chmod does not stop writes, so the read-only folder is what os.access says.
+    with Store(db) as store:
+        uid = new_session(store)
+        store.end_session(uid, "finished")
+    for leftover in (db.with_name(db.name + "-shm"), db.with_name(db.name + "-wal")):
+        leftover.unlink(missing_ok=True)
+    real_access = os.access
+    monkeypatch.setattr(os, "access", lambda path, mode: False if Path(path) == db.parent else real_access(path, mode))
+    with Store(db, readonly=True) as store:
+        assert store.session(uid)["status"] == "finished" and len(store.sessions()) == 1
+    # Read as it stands: nothing was made beside it (SQLite would have made the -shm file).
+    assert not db.with_name(db.name + "-shm").exists()
+
+
 def test_session_run_measurement_round_trip(db: Path) -> None:
     with Store(db) as store:
         uid = new_session(store)
