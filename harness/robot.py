@@ -69,7 +69,7 @@ class RobotConnector:
         try:
             hub = session.hello(geometry=profile.geometry(), expect_robot_id=profile.id)
             # Before anything moves: a reset routine the hub lacks would only show after the first run.
-            if self.sim is None and self.reset_routine and self.reset_routine not in hub.routines:
+            if self.reset_routine and self.reset_routine not in hub.routines:
                 raise InputError(f"hub {hub.robot_id} has no routine {self.reset_routine!r} (it has: "
                                  f"{', '.join(hub.routines) or 'none'})", key="--reset")
         except BaseException:

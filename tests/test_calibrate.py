@@ -624,6 +624,12 @@ def test_a_reset_routine_the_hub_lacks_is_refused_before_anything_moves() -> Non
     assert exc.value.key == "--reset" and sim.robot.travel_mm == before
 
 
+@pytest.mark.parametrize("command", [["calibrate", "distance"], ["calibrate", "turns"], ["tune"]])
+def test_a_reset_routine_is_checked_on_the_simulator_too(capsys, command: list[str]) -> None:
+    assert trackproof([*command, "--reset", "nosuch"]) == 2
+    assert "--reset: hub kestrel-7 has no routine 'nosuch' (it has: none)" in capsys.readouterr().err
+
+
 def test_a_hub_that_resets_itself_needs_no_operator() -> None:
     # Over a real link to a simulated hub (as `trackproof sim serve` offers), its sim_reset routine
     # puts the robot back between runs: the operator is never asked to.
