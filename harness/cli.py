@@ -8,6 +8,7 @@ import json
 import os
 import sys
 from collections import Counter
+from importlib.metadata import version
 from pathlib import Path
 from typing import Any
 
@@ -301,6 +302,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="Repeatability harness for line-following robots.",
         epilog=SAFETY_NOTE,
     )
+    parser.add_argument("--version", action="version", version=f"trackproof {version('trackproof')}")
     sub = parser.add_subparsers(dest="command", required=True)
     sim = sub.add_parser("sim", help="run one action on the simulated robot",
                          description="Run one action on the simulated robot and print its result, "

@@ -37,7 +37,8 @@ def test_link_strings():
     assert parse_link("ble:kestrel-7").target == "kestrel-7"
     assert parse_link("sim").target == ""
     for bad, words in [("usb:x", "unknown link"), ("serial:", "needs a port"), ("ble:", "name or address"),
-                       ("serial:/dev/x@fast", "whole-number baud"), ("serial:/dev/x@1200", "bootloader")]:
+                       ("serial:/dev/x@fast", "whole-number baud"), ("serial:/dev/x@1200", "bootloader"),
+                       ("serial:/dev/x@9000000", r"out of range 2400..4000000$")]:
         with pytest.raises(InputError, match=words):
             parse_link(bad)
 

@@ -59,14 +59,14 @@ def whole_number(low: int) -> Callable[[str], int]:
 positive_int = whole_number(1)
 
 
-def add_robot_options(p: argparse.ArgumentParser, repeat: int) -> None:
+def add_robot_options(p: argparse.ArgumentParser, repeat: int, repeat_means: str = "runs per combination") -> None:
     p.add_argument("--robot", type=Path, help=f"robot profile (default {DEFAULT_PROFILE.name}); "
                                                "--write updates this file")
     p.add_argument("--course", type=Path, help=f"course for the simulated link (default {DEFAULT_COURSE.name})")
     p.add_argument("--link", default="sim", help="sim, sim:COURSE, serial:PORT[@BAUD], serial:auto or ble:NAME_OR_ADDRESS "
                                                  "(default sim)")
     p.add_argument("--seed", type=int, default=0, help="simulator seed (default 0)")
-    p.add_argument("--repeat", type=positive_int, default=repeat, help=f"runs per combination (default {repeat})")
+    p.add_argument("--repeat", type=positive_int, default=repeat, help=f"{repeat_means} (default {repeat})")
     p.add_argument("--write", action="store_true",
                    help="write the recommended values into the --robot profile (with a dated note)")
     p.add_argument("--json", type=Path, metavar="PATH", help="write the full result as JSON here")

@@ -406,7 +406,7 @@ def add_parser(calibrate_sub: argparse._SubParsersAction) -> None:
                     "Borenstein & Feng 1996). Recommends track_mm and wheel_ratio (both written with "
                     "--write). On the simulator the end point comes from the truth; on a real "
                     "robot you measure it from a start mark after each square.")
-    add_robot_options(p, repeat=5)
+    add_robot_options(p, repeat=5, repeat_means="squares each way")
     p.add_argument("--side-mm", type=float, default=600.0, help="side of the square (default 600 mm)")
     p.add_argument("--speed-pct", type=float, default=30.0, help="speed on the legs (default 30)")
     p.add_argument("--turn-speed-pct", type=float, default=25.0, help="speed of the spin turns (default 25)")

@@ -77,5 +77,5 @@ def check_baud(baud: int, key: str) -> None:
     # 1200 baud is refused on purpose: closing a port at 1200 baud reboots many boards into
     # their bootloader (the "1200-baud touch", common practice in USB CDC firmware).
     if not 2400 <= baud <= 4_000_000:
-        raise InputError(f"baud rate {baud} is out of range 2400..4000000 (1200 would reboot many "
-                         "boards into their bootloader)", key=key)
+        why = " (1200 would reboot many boards into their bootloader)" if 0 < baud < 2400 else ""
+        raise InputError(f"baud rate {baud} is out of range 2400..4000000{why}", key=key)

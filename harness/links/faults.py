@@ -45,7 +45,7 @@ def parse_faults(text: str) -> Faults:
     values: dict[str, float | int | str] = {}
     for item in filter(None, (part.strip() for part in text.split(","))):
         key, sep, raw = item.partition("=")
-        where = f"--link-faults {item!r}"
+        where = repr(item)  # the key (--link-faults) is named by the error itself
         if not sep or key not in Faults.__dataclass_fields__:
             raise InputError(f"{where}: expected key=value with key one of "
                              f"{', '.join(Faults.__dataclass_fields__)}", key="--link-faults")
