@@ -178,8 +178,8 @@ def cmd_run(args: argparse.Namespace) -> int:
     resume_hint = (f"  trackproof run {args.suite} --db {args.db} --link {args.link}{again} "
                    f"--resume {report.uid}")
     if report.status == "aborted":
-        print(f"trackproof: interrupted; finished runs are kept in {args.db}. Resume with:\n{resume_hint}",
-              file=sys.stderr)
+        print(f"trackproof: {report.note or 'interrupted'}; finished runs are kept in {args.db}. Resume with:\n"
+              f"{resume_hint}", file=sys.stderr)
         return 130
     if report.status == "link_lost":
         print(f"trackproof: error: {report.note}\nFinished runs are kept in {args.db}. Resume with:\n"

@@ -234,8 +234,10 @@ class Runner:
                         counts[outcome.status] += 1
                     if self.on_progress:
                         self.on_progress(case.name, rep, index, total, counts["fail"])
-        except (KeyboardInterrupt, OperatorStopped):
+        except KeyboardInterrupt:
             status = "aborted"
+        except OperatorStopped as stop:
+            status, note = "aborted", str(stop)
         except (LinkError, ProtocolError) as exc:
             status, note = "link_lost", str(exc)
         link_seconds = self.session.link.now() - started_link if self.session is not None else 0.0
