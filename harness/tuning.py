@@ -13,6 +13,15 @@ and late in the run. A run oscillates steadily ("sustained") when its peaks no l
 (growth >= 1 - tolerance) and stay above a floor that sensor noise alone does not reach; it
 "grows" when they swell, or when the guard stopped the robot.
 
+A run is "unclear" when something other than the follower's own dynamics moved the error, so it
+is neither a stable nor an oscillating gain: the telemetry shows a line beside the followed one
+(the profile's junction sensors read dark: a junction, spur or crossing) or a bend (the heading
+changed), or the error is held to one side, or strays far without swinging from side to side, or
+its big swings fill only a small part of the run. The Ku search drives an unclear gain once more
+(a bad placement happens) and stops if it is unclear again; in the verification it is not clean.
+Without junction sensors a side line shows only in the error, where these checks catch it less
+reliably: a clear straight line is still the method's first requirement.
+
 The guard watches the telemetry while the robot runs (through Session.run's on_telemetry hook,
 called with each telemetry batch as it arrives) and stops the robot at once when the follower
 loses the line (all its sensors light) or when the error swings past a limit on several
@@ -42,7 +51,7 @@ from harness.session import RunRecord, Session
 from harness.sim import SUITES_DIR
 from harness.store import Store
 from harness.telemetry import decode_batches
-from hub_side import wire
+from hub_side import motion, wire
 
 TUNING_COURSE = SUITES_DIR / "tuning_straight.toml"
 TELEMETRY_HZ = 100
@@ -56,17 +65,56 @@ class TuneFailed(TrackproofError):
 class Judgement:
     tolerance: float = 0.015  # growth per cycle within this of 1 counts as steady
     min_amplitude: float = 10.0  # error units (reflectance %); sensor noise alone stays below
+    # A steady oscillation fills the run with half-cycles (0.95 and more on the straight tuning
+    # course); big swings now and then (a junction, a bump) fill a small part of it.
+    min_coverage: float = 0.5
 
-    def verdict(self, osc: Oscillation, guard: str | None) -> str:
-        """damped, sustained, growing, or lost (the line lost with no oscillation to blame)."""
-        oscillating = osc.half_cycles >= 4 and osc.growth_per_cycle >= 1.0 - self.tolerance
+    def verdict(self, osc: Oscillation, guard: str | None, disturbance: str | None = None) -> str:
+        return self.judge(osc, guard, disturbance)[0]
+
+    def judge(self, osc: Oscillation, guard: str | None, disturbance: str | None = None) -> tuple[str, str]:
+        """(verdict, why). The verdict is damped, sustained, growing, lost (the line lost with no
+        oscillation to blame) or unclear: the run says nothing about the loop's own stability
+        (something other than the follower moved the error), so it is neither a stable nor an
+        oscillating gain. `disturbance`: what the run's telemetry showed besides the line (side
+        lines, a bend), None when nothing."""
+        floor = self.min_amplitude
+        measured = osc.half_cycles >= 4 and math.isfinite(osc.growth_per_cycle)
+        oscillating = measured and osc.growth_per_cycle >= 1.0 - self.tolerance
+        if disturbance:  # first: it may be what swung the robot or lost it the line
+            return "unclear", disturbance
         if guard == "limit":
-            return "growing"
+            return "growing", "stopped by the guard: the error swung past its limit on several half-cycles in a row"
         if guard == "lost":
-            return "growing" if oscillating or osc.amplitude_late >= self.min_amplitude else "lost"
-        if not oscillating or osc.amplitude_late < self.min_amplitude:
-            return "damped"
-        return "growing" if osc.growth_per_cycle > 1.0 + self.tolerance else "sustained"
+            if oscillating or osc.amplitude_late >= floor:
+                return "growing", "lost the line while swinging"
+            return "lost", "lost the line without swinging"
+        if not osc.window_s > 0:
+            return "unclear", "too short a record to judge"
+        if abs(osc.offset) >= floor:
+            return "unclear", (f"error held at {osc.offset:+.1f} to one side (its median): not centred on a straight "
+                               "line (a bend, the robot off to one side, or the sensors far out of balance)")
+        if not measured:
+            # Too few half-cycles to compare early and late peaks. Small spread late in the run:
+            # the start swing died out and only noise is left. Large spread without swings from
+            # side to side: excursions to one side, which is no oscillation and no settling either.
+            if osc.spread_rms >= floor / math.sqrt(2):  # the RMS of a sine whose peaks reach the floor
+                return "unclear", (f"error RMS {osc.spread_rms:.1f} late in the run but too few swings from side "
+                                   "to side to judge: excursions to one side, not an oscillation")
+            return "damped", (f"no steady swing: the start swing died out (error RMS {osc.spread_rms:.1f} late "
+                              "in the run)")
+        if not oscillating:
+            return "damped", "peaks shrink"
+        if not osc.amplitude_late >= floor:
+            return "damped", (f"peaks stay below {floor:g}: too small to tell from sensor noise, so not taken "
+                              "as an oscillation")
+        if not osc.coverage >= self.min_coverage:
+            return "unclear", (f"big swings only now and then ({osc.half_cycles} half-cycles fill "
+                               f"{osc.coverage:.0%} of the run): not a steady oscillation; something else "
+                               "moves the robot (junctions, side lines, bends, bumps)")
+        if osc.growth_per_cycle > 1.0 + self.tolerance:
+            return "growing", "peaks grow"
+        return "sustained", "peaks hold steady"
 
 
 # ------------------------------------------------------------------ tuning rules
@@ -75,13 +123,19 @@ class Judgement:
 @dataclass(frozen=True)
 class Rule:
     """One row of a tuning table, in the standard form Kp (1 + 1/(Ti s) + Td s), as multiples of
-    Ku and Tu (None: the row has no such term)."""
+    Ku and Tu (None: the row has no such term). `source`: where the row comes from; `checked`:
+    how far that was checked, in words for the user (the project says where values come from)."""
 
     name: str
     kp_ku: float
     ti_tu: float | None
     td_tu: float | None
     source: str
+    checked: str
+
+    @property
+    def provenance(self) -> str:
+        return f"source: {self.source}; {self.checked}"
 
     def gains(self, ku: float, tu: float) -> dict[str, float | None]:
         kp = self.kp_ku * ku
@@ -91,19 +145,25 @@ class Rule:
                 "kd": 0.0 if td is None else kp * td}
 
 
-_TL = "Tyreus & Luyben, Ind. Eng. Chem. Res. 31 (1992) [citation from memory]; values from a secondary table"
+_ZN = "Ziegler & Nichols, Trans. ASME 64 (1942)"
+_ZN_SEEN = "values as printed in secondary sources; the paper itself not seen"
+_TL = "Tyreus & Luyben, Ind. Eng. Chem. Res. 31 (1992)"
+_TL_SEEN = "values from a secondary table; the paper cited from memory, not checked"
 
-# REFERENCES.md section 3. Ziegler & Nichols, "Optimum settings for automatic controllers",
-# Trans. ASME 64 (1942) 759-768: the P, PI and PID rows are those of the secondary sources listed
-# there (the paper itself not seen; the PI row confirmed by the Feedback Systems errata).
+# Provenance as in REFERENCES.md section 3 (its tags there: [S] seen in a source, [M] from memory).
+# Ziegler & Nichols, "Optimum settings for automatic controllers", Trans. ASME 64 (1942) 759-768:
+# the P, PI and PID rows are those of the secondary sources listed there (the paper itself not
+# seen; the PI row confirmed by the Feedback Systems errata). The PD row was seen only in code;
+# the "no overshoot" row has no primary source and its values are from memory.
 RULES: tuple[Rule, ...] = (
-    Rule("ZN P", 0.5, None, None, "Ziegler & Nichols 1942 (secondary sources)"),
-    Rule("ZN PI", 0.45, 1 / 1.2, None, "Ziegler & Nichols 1942; Astrom & Murray errata"),
-    Rule("ZN PID", 0.6, 0.5, 0.125, "Ziegler & Nichols 1942 (secondary sources)"),
-    Rule("ZN PD", 0.8, None, 0.125, "PD row seen only in code, not a primary source [REFERENCES S, code only]"),
-    Rule("Tyreus-Luyben PI", 1 / 3.2, 2.2, None, _TL),
-    Rule("Tyreus-Luyben PID", 1 / 2.2, 2.2, 1 / 6.3, _TL),
-    Rule("no overshoot", 0.2, 0.5, 1 / 3, "folklore, no primary source; values from memory [M]"),
+    Rule("ZN P", 0.5, None, None, _ZN, _ZN_SEEN),
+    Rule("ZN PI", 0.45, 1 / 1.2, None, _ZN, "values confirmed by the errata to Astrom & Murray, Feedback Systems"),
+    Rule("ZN PID", 0.6, 0.5, 0.125, _ZN, _ZN_SEEN),
+    Rule("ZN PD", 0.8, None, 0.125, "published code only", "no primary paper found"),
+    Rule("Tyreus-Luyben PI", 1 / 3.2, 2.2, None, _TL, _TL_SEEN),
+    Rule("Tyreus-Luyben PID", 1 / 2.2, 2.2, 1 / 6.3, _TL, _TL_SEEN),
+    Rule("no overshoot", 0.2, 0.5, 1 / 3, "a rule of thumb, no primary source found",
+         "values cited from memory, not checked"),
 )
 
 # What the hub's follow_line can run: kp * e + kd * de/dt (no integral term).
@@ -125,7 +185,7 @@ class Candidate:
 
 def rule_table(ku: float, tu: float) -> list[dict[str, Any]]:
     """Every row with its gains (for the report)."""
-    return [dict(rule=r.name, source=r.source, **r.gains(ku, tu)) for r in RULES]
+    return [dict(rule=r.name, source=r.source, checked=r.checked, **r.gains(ku, tu)) for r in RULES]
 
 
 def hub_candidates(ku: float, tu: float) -> list[Candidate]:
@@ -137,7 +197,7 @@ def hub_candidates(ku: float, tu: float) -> list[Candidate]:
         if rule.name not in HUB_ROWS:
             continue
         g = rule.gains(ku, tu)
-        name, note = rule.name, rule.source
+        name, note = rule.name, rule.provenance
         if g["ti_s"] is not None:
             name = f"{rule.name} without I"
             note = f"{PD_ONLY} (Ti = {g['ti_s']:.3f} s); {note}"
@@ -258,7 +318,9 @@ class Trial:
     duration_s: float
     oscillation: Oscillation
     verdict: str
-    error_rms: float
+    error_rms: float  # over the whole run, the start swing included
+    reason: str = ""  # why the verdict, in words
+    travel_mm: float = math.nan  # from the wheel encoders
 
     @property
     def unstable(self) -> bool:
@@ -267,7 +329,8 @@ class Trial:
     def as_dict(self) -> dict[str, Any]:
         return {"kp": self.kp, "kd": self.kd, "status": self.status, "guard": self.guard,
                 "guard_at_s": self.guard_at_s, "duration_s": self.duration_s, "verdict": self.verdict,
-                "error_rms": self.error_rms, "oscillation": self.oscillation.as_dict()}
+                "reason": self.reason, "error_rms": self.error_rms, "travel_mm": self.travel_mm,
+                "oscillation": self.oscillation.as_dict()}
 
 
 @dataclass(frozen=True)
@@ -312,6 +375,49 @@ class Verification:
 def error_rms(record: RunRecord) -> float:
     e = np.asarray(record.telemetry.error_pct, dtype=float)
     return float(np.sqrt(np.mean(e * e))) if len(e) else math.nan
+
+
+def dark_runs(t_s: np.ndarray, x_mm: np.ndarray, reflectance: np.ndarray, dark_pct: float,
+              min_samples: int = 2) -> list[tuple[float, float]]:
+    """(time, travel) where each stretch of at least `min_samples` readings below dark_pct starts."""
+    dark = np.asarray(reflectance) < dark_pct
+    out = []
+    i, n = 0, len(dark)
+    while i < n:
+        if dark[i]:
+            j = i
+            while j < n and dark[j]:
+                j += 1
+            if j - i >= min_samples:
+                out.append((float(t_s[i]), float(x_mm[i])))
+            i = j
+        else:
+            i += 1
+    return out
+
+
+def off_the_straight(t_s: np.ndarray, x_mm: np.ndarray, heading_deg: np.ndarray,
+                     side_sensors: dict[str, np.ndarray], dark_pct: float, heading_from: str,
+                     max_turn_deg: float = 20.0) -> str | None:
+    """What a run's telemetry shows that a clear straight line would not, in words; None if
+    nothing. Side lines: a sensor beside the followed ones (the profile's junction sensors) read
+    dark, so the robot passed a junction, a spur or a crossing and the follow sensors saw it too.
+    A bend: the heading at the end (its median over the last half second, which averages the
+    swings) differs from the start's by max_turn_deg or more. On the straight tuning course the
+    heading changes by under 5 degrees from the gyro, and by about 4 from the encoders of the
+    uncalibrated demo profile."""
+    found = []
+    seen = sorted((x, t, name) for name, refl in side_sensors.items() for t, x in dark_runs(t_s, x_mm, refl, dark_pct))
+    if seen:
+        listed = [f"{name} dark at {x:.0f} mm ({t:.2f} s)" for x, t, name in seen[:4]]
+        more = f" and {len(seen) - 4} more" if len(seen) > 4 else ""
+        found.append("passed a line beside the followed one: " + ", ".join(listed) + more)
+    if len(t_s):
+        end = np.asarray(t_s) >= t_s[-1] - 0.5
+        turned = float(np.median(np.asarray(heading_deg)[end]) - heading_deg[0])
+        if abs(turned) >= max_turn_deg:
+            found.append(f"turned {turned:+.0f} degrees during the run ({heading_from}): the line bends")
+    return "; ".join(found) or None
 
 
 def climb_gains(s: TuneSettings) -> list[float]:
@@ -396,21 +502,63 @@ class Tuner:
         skip_s = 0.0 if guard.reason else self.settings.skip_s
         osc = oscillation_of(np.asarray(tel.t_s), np.asarray(tel.error_pct), skip_s=skip_s,
                              hysteresis=self.settings.judgement.min_amplitude / 3)
-        verdict = self.settings.judgement.verdict(osc, guard.reason)
+        x_mm, disturbance = self.course_check(tel, sensors)
+        verdict, reason = self.settings.judgement.judge(osc, guard.reason, disturbance)
         duration = float(record.result.get("duration_s", tel.t_s[-1] if len(tel) else 0.0))
         out = Trial(kp, kd, record.status, guard.reason, guard.tripped_at_s, duration, osc, verdict,
-                    error_rms(record))
+                    error_rms(record), reason, float(x_mm[-1]) if len(x_mm) else math.nan)
         if self.on_trial is not None:
             self.on_trial(out)
         return out
+
+    def course_check(self, tel: Any, sensors: list[str]) -> tuple[np.ndarray, str | None]:
+        """The run's travel (mm, from the encoders) and what its telemetry shows besides a clear
+        straight line (off_the_straight). Side lines are looked for with the profile's junction
+        sensors that are not follow sensors; the heading comes from the gyro when the hub has one,
+        else from the encoders and the profile's geometry."""
+        geometry = self.profile.geometry()
+        left = np.asarray(tel.enc_left_deg, dtype=float)
+        right = np.asarray(tel.enc_right_deg, dtype=float)
+        x_mm = np.asarray(motion.travel_mm(left, right, geometry), dtype=float)
+        assert self.session is not None and self.session.hub is not None
+        if self.session.hub.board.get("gyro"):
+            heading, heading_from = np.asarray(tel.heading_deg, dtype=float), "gyro"
+        else:
+            heading, heading_from = np.asarray(motion.encoder_heading_deg(left, right, geometry)), "wheel encoders"
+        refl = np.asarray(tel.reflectance_pct)
+        # Only junction sensors at the follow sensors' end of the robot: at the other end they
+        # swing across the followed line itself whenever the robot steers.
+        places = self.profile.sensors
+        ahead = places[self.follow.sensors[0]].forward_mm >= 0 if self.follow.sensors[0] in places else True
+        side = {name: refl[:, sensors.index(name)]
+                for name in dict.fromkeys((self.profile.junction_left, self.profile.junction_right))
+                if name and name in sensors and name not in self.follow.sensors
+                and (places[name].forward_mm >= 0 if name in places else True) == ahead}
+        return x_mm, off_the_straight(np.asarray(tel.t_s), x_mm, heading, side, self.profile.threshold_pct,
+                                      heading_from)
+
+    def judged_trial(self, kp: float, trials: list[Trial]) -> Trial:
+        """A trial that says something about the loop. An unclear run is driven once more (one
+        bad placement happens); unclear twice, the course or the robot is the trouble, and the
+        Ku search stops rather than take it as a stable or an oscillating gain."""
+        for _ in range(2):
+            t = self.trial(kp)
+            trials.append(t)
+            if t.verdict != "unclear":
+                return t
+        travel = f" (a run drives about {t.travel_mm:.0f} mm)" if math.isfinite(t.travel_mm) else ""
+        raise TuneFailed(f"kp={kp:.3f}, twice: {t.reason}. Neither a stable nor an oscillating gain, so nothing "
+                         "concluded. The ultimate-gain method needs the robot on a clear straight line: no "
+                         f"junctions, side lines or bends ahead{travel}, the robot a little (about 5 mm) to one "
+                         "side of the line" + ("; on the simulator, the bundled straight course (leave out --course)"
+                                               if self.connector.sim is not None else ""))
 
     def find_ultimate(self) -> Ultimate:
         s = self.settings
         trials: list[Trial] = []
         stable, oscillating = None, None
         for kp in climb_gains(s):
-            t = self.trial(kp)
-            trials.append(t)
+            t = self.judged_trial(kp, trials)
             if t.verdict == "lost":
                 raise TuneFailed(f"the robot lost the line at kp={kp:.3f} without oscillating: check the "
                                  "start (on the line, a little to one side) or start higher with --kp-start")
@@ -425,8 +573,7 @@ class Tuner:
             raise TuneFailed(f"already oscillating at the first gain, kp={s.kp_start:g}: start lower with --kp-start")
         for _ in range(s.bisections):
             mid = math.sqrt(stable.kp * oscillating.kp)
-            t = self.trial(mid)
-            trials.append(t)
+            t = self.judged_trial(mid, trials)
             if t.unstable:
                 oscillating = t
             else:
@@ -460,6 +607,18 @@ class Tuner:
             self.session = None
 
 
+def standard_error(v: Verification) -> float:
+    """Of the mean error RMS; 0 with a single run (nothing to estimate it from)."""
+    return v.sd / math.sqrt(len(v.rms)) if len(v.rms) > 1 else 0.0
+
+
+def best_clean(results: list[Verification]) -> Verification | None:
+    """The candidate with the lowest mean error RMS among those whose runs were all clean (a mean
+    that is not a number, from a run without telemetry, cannot be ranked)."""
+    rows = [v for v in results if v.clean and math.isfinite(v.mean)]
+    return min(rows, key=lambda v: v.mean) if rows else None
+
+
 def best_verified(results: list[Verification]) -> Verification | None:
     """Among the candidates whose runs were all clean (the current gains included), those whose
     mean error RMS is within one standard error of the lowest mean: the "one standard error" rule
@@ -467,14 +626,58 @@ def best_verified(results: list[Verification]) -> Verification | None:
     A few runs cannot tell them apart, so the current gains are kept if they are among them (no
     change without evidence); otherwise the gentlest row (lowest kp), which amplifies sensor noise
     less. None when nothing ran clean."""
-    rows = [v for v in results if v.clean]
-    if not rows:
+    best = best_clean(results)
+    if best is None:
         return None
-    best = min(rows, key=lambda v: v.mean)
-    margin = best.sd / math.sqrt(len(best.rms)) if len(best.rms) > 1 else 0.0
-    close = [v for v in rows if v.mean <= best.mean + margin]
+    limit = best.mean + standard_error(best)
+    close = [v for v in results if v.clean and math.isfinite(v.mean) and v.mean <= limit]
     current = [v for v in close if v.candidate.name == "current"]
     return current[0] if current else min(close, key=lambda v: v.candidate.kp)
+
+
+def _not_clean(v: Verification) -> str:
+    """"growing on 2 of 5 runs, unclear on 1": what kept a candidate from being clean."""
+    counts = {verdict: v.verdicts.count(verdict) for verdict in sorted(set(v.verdicts) - {"damped"})}
+    return ", ".join(f"{verdict} on {n} of {len(v.verdicts)} runs" for verdict, n in counts.items())
+
+
+def recommendation_text(report: TuneReport) -> str:
+    """What best_verified chose and why, in words that hold for the numbers shown: in particular
+    why the current gains were not kept (not clean, or more than one standard error worse), and
+    a plain warning when the recommendation tracked worse than them."""
+    s = report.settings
+    rec = report.recommended
+    current = next((v for v in report.verification if v.candidate.name == "current"), None)
+    if rec is None:
+        if not report.verification:
+            return ""
+        return "Nothing ran clean on every run: no recommendation; keep the current gains."
+    best = best_clean(report.verification)
+    assert best is not None  # a recommendation is always among the clean candidates
+    best_text = (f"{best.candidate.name}, error RMS {best.mean:.2f} with standard error "
+                 f"{standard_error(best):.2f}")
+    if rec.candidate.name == "current":
+        why = ("the lowest error RMS of the gains that ran clean" if rec.candidate == best.candidate else
+               f"within one standard error of the best that ran clean ({best_text})")
+        return (f"Recommended: keep the current gains (kp {rec.candidate.kp:.4f}, kd {rec.candidate.kd:.5f}; error "
+                f"RMS {rec.mean:.2f} sd {rec.sd:.2f}): {why}, at this speed ({s.speed_pct:g} %).")
+    text = (f"Recommended: {rec.candidate.name}: kp {rec.candidate.kp:.4f}, kd {rec.candidate.kd:.5f}; error RMS "
+            f"{rec.mean:.2f} sd {rec.sd:.2f}. ")
+    text += ("The lowest error RMS of the gains that ran clean" if rec.candidate == best.candidate else
+             f"The gentlest row within one standard error of the best that ran clean ({best_text})")
+    if current is not None:
+        if not current.clean:
+            text += (f". The current gains (error RMS {current.mean:.2f} sd {current.sd:.2f}) are not kept because "
+                     f"they did not run clean: {_not_clean(current)}")
+            if current.mean < rec.mean:
+                text += (f". WARNING: their error RMS is lower than the recommendation's ({current.mean:.2f} against "
+                         f"{rec.mean:.2f}); look at their runs before changing anything")
+        elif not math.isfinite(current.mean):
+            text += ". The current gains could not be ranked (a run without telemetry)"
+        else:
+            text += (f". The current gains (error RMS {current.mean:.2f} sd {current.sd:.2f}) are more than one "
+                     "standard error worse")
+    return text + f". Gains hold for this speed ({s.speed_pct:g} %)."
 
 
 @dataclass
@@ -513,43 +716,45 @@ def tune(connector: RobotConnector, settings: TuneSettings, ask: Ask = ask_opera
 # ------------------------------------------------------------------ command line
 
 
+def _num(value: float, spec: str) -> str:
+    """A number for the table, "-" when it could not be measured (NaN)."""
+    return format(value, spec) if math.isfinite(value) else "-".rjust(len(format(0.0, spec)))
+
+
+def trial_line(t: Trial) -> str:
+    """One run of the Ku search: verdict, what was measured, and why the verdict."""
+    osc = t.oscillation
+    guard = f"; stopped by the guard ({t.guard}) at {t.guard_at_s:.2f} s" if t.guard else ""
+    return (f"  kp {t.kp:8.4f}: {t.verdict:9} period {_num(osc.period_s, '6.3f')} s, growth/cycle "
+            f"{_num(osc.growth_per_cycle, '5.3f')}, peaks {_num(osc.amplitude_early, '5.1f')} -> "
+            f"{_num(osc.amplitude_late, '5.1f')}, error RMS {t.error_rms:5.2f}: {t.reason}{guard}")
+
+
 def print_report(report: TuneReport) -> None:
     u, s = report.ultimate, report.settings
     print(f"Tuning {report.profile.id}, follow {s.direction} at {s.speed_pct:g} % for {s.time_s:g} s per run")
+    print(f"Each run is judged after its first {s.skip_s:g} s (the start swing); the error RMS is over the whole run.")
+    print("Period, growth per cycle and peaks are of the error's half-cycles (\"-\": too few to measure).")
     for t in u.trials:
-        osc = t.oscillation
-        guard = f", stopped by the guard ({t.guard}) at {t.guard_at_s:.2f} s" if t.guard else ""
-        print(f"  kp {t.kp:8.4f}: {t.verdict:9} period {osc.period_s:6.3f} s, growth/cycle "
-              f"{osc.growth_per_cycle:5.3f}, amplitude {osc.amplitude_early:5.1f} -> {osc.amplitude_late:5.1f}{guard}")
+        print(trial_line(t))
     print(f"Ultimate gain Ku = {u.ku:.4f} (steady at {u.kp_stable:.4f}, oscillating at {u.kp_oscillating:.4f}); "
           f"period Tu = {u.tu_s:.4f} s (spectrum {u.tu_spectrum_s:.4f} s)")
     print("Rules (standard form Kp, Ti, Td; the hub runs kp and kd = Kp*Td):")
     for row in report.table:
         ti = "-" if row["ti_s"] is None else f"{row['ti_s']:.4f}"
         td = "-" if row["td_s"] is None else f"{row['td_s']:.4f}"
-        print(f"  {row['rule']:18} Kp {row['kp']:7.4f}  Ti {ti:>7}  Td {td:>7}  kd {row['kd']:7.5f}  ({row['source']})")
+        print(f"  {row['rule']:18} Kp {row['kp']:7.4f}  Ti {ti:>7}  Td {td:>7}  kd {row['kd']:7.5f}")
+        print(f"  {'':18} source: {row['source']}; {row['checked']}")
     print(f"  Rows with an integral term run as \"... without I\": {PD_ONLY}.")
     if report.verification:
         print(f"Verification, {s.verify_runs} runs each (error RMS over the run, %):")
         for v in report.verification:
-            flag = "" if v.clean else "  not clean: " + ", ".join(sorted(set(v.verdicts) - {"damped"}))
+            flag = "" if v.clean else "  not clean: " + _not_clean(v)
             print(f"  {v.candidate.name:27} kp {v.candidate.kp:7.4f} kd {v.candidate.kd:7.5f}: "
                   f"mean {v.mean:6.2f} sd {v.sd:5.2f}{flag}")
-    rec = report.recommended
-    if rec is None:
-        if report.verification:
-            print("Nothing ran clean on every run: no recommendation; keep the current gains.")
-    elif rec.candidate.name == "current":
-        print(f"Recommended: keep the current gains (kp {rec.candidate.kp:.4f}, kd {rec.candidate.kd:.5f}; error "
-              f"RMS {rec.mean:.2f} sd {rec.sd:.2f}): within one standard error of the best at this speed "
-              f"({s.speed_pct:g} %).")
-    else:
-        current = next((v for v in report.verification if v.candidate.name == "current"), None)
-        versus = (f" (current gains: {current.mean:.2f} sd {current.sd:.2f}"
-                  f"{'' if current.clean else ', not clean'})" if current is not None else "")
-        print(f"Recommended: {rec.candidate.name}: kp {rec.candidate.kp:.4f}, kd {rec.candidate.kd:.5f}; error RMS "
-              f"{rec.mean:.2f} sd {rec.sd:.2f}{versus}. The gentlest row within one standard error of the "
-              f"best, and the current gains are not; gains hold for this speed ({s.speed_pct:g} %).")
+    text = recommendation_text(report)
+    if text:
+        print(text)
 
 
 def _check_number(value: float | None, key: str, low: float, high: float, *, low_open: bool = False,

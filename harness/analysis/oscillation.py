@@ -5,6 +5,13 @@ growth per cycle from the peak amplitudes early and late. Pure functions on nump
 How a record is read (oscillation_of): after the first `skip_s` the signal less its median is cut
 into half-cycles; the period comes from the crossings (and, as a cross-check, from the spectrum's
 peak); growth per cycle from the mean |peak| in the first and last thirds of the half-cycles.
+
+Taking the median off hides a signal held to one side, and a signal that leaves the hysteresis
+band only now and then yields few half-cycles: so the result also carries the median itself
+(`offset`), the spread about it late in the record (`spread_rms`) and how much of the analysed
+time the half-cycles fill at the measured period (`coverage`), for a judge to tell "settled"
+from "something else".
+What cannot be measured is NaN, not 0.
 """
 
 from __future__ import annotations
@@ -105,11 +112,17 @@ class Oscillation:
     growth_per_cycle: float  # late over early amplitude, per period (1 = steady)
     peak_t_s: tuple[float, ...] = ()
     peak_abs: tuple[float, ...] = ()
+    window_s: float = 0.0  # length of the analysed window (after skip_s)
+    offset: float = math.nan  # median of the analysed signal, taken off before cutting half-cycles
+    spread_rms: float = math.nan  # RMS about that median over the second half of the window
+    coverage: float = math.nan  # half-cycles x half the period / window_s: near 1 for a steady oscillation
 
     def as_dict(self) -> dict[str, Any]:
         return {"period_s": self.period_s, "spectrum_period_s": self.spectrum_period_s,
                 "half_cycles": self.half_cycles, "amplitude_early": self.amplitude_early,
-                "amplitude_late": self.amplitude_late, "growth_per_cycle": self.growth_per_cycle}
+                "amplitude_late": self.amplitude_late, "growth_per_cycle": self.growth_per_cycle,
+                "window_s": self.window_s, "offset": self.offset, "spread_rms": self.spread_rms,
+                "coverage": self.coverage}
 
 
 def oscillation_of(t: np.ndarray, e: np.ndarray, *, skip_s: float = 0.5, hysteresis: float = 3.0) -> Oscillation:
@@ -118,19 +131,26 @@ def oscillation_of(t: np.ndarray, e: np.ndarray, *, skip_s: float = 0.5, hystere
     e = np.asarray(e, dtype=float)
     keep = t >= (t[0] if len(t) else 0.0) + skip_s
     t, e = t[keep], e[keep]
+    nan = math.nan
     if len(e) < 8:
-        return Oscillation(math.nan, math.nan, 0, 0.0, 0.0, 0.0)
-    e = e - np.median(e)  # a steady offset (sensors not quite symmetric) is not oscillation
+        return Oscillation(nan, nan, 0, nan, nan, nan)
+    window_s = float(t[-1] - t[0])
+    offset = float(np.median(e))
+    e = e - offset  # a steady offset (sensors not quite symmetric) is not oscillation
+    second_half = e[t >= t[0] + window_s / 2]  # a slow start swing still dying out is not what is left
+    spread = float(np.sqrt(np.mean(second_half * second_half)))
     starts, peaks = half_cycles(e, hysteresis)
     period = zero_crossing_period(t, e, hysteresis)
     spec = spectrum_period(t, e)
     peak_t = t[peaks]
     peak_abs = np.abs(e[peaks])
+    coverage = len(peaks) * period / 2.0 / window_s if math.isfinite(period) and window_s > 0 else nan
+    shape = {"window_s": window_s, "offset": offset, "spread_rms": spread, "coverage": coverage}
     third = len(peaks) // 3
     if third < 1 or not math.isfinite(period):
-        return Oscillation(period, spec, len(peaks), 0.0, 0.0, 0.0, tuple(peak_t), tuple(peak_abs))
+        return Oscillation(period, spec, len(peaks), nan, nan, nan, tuple(peak_t), tuple(peak_abs), **shape)
     early, late = peak_abs[:third], peak_abs[-third:]
     span_s = float(np.mean(peak_t[-third:]) - np.mean(peak_t[:third]))
-    growth = (float(np.mean(late)) / float(np.mean(early))) ** (period / span_s) if span_s > 0 else 0.0
+    growth = (float(np.mean(late)) / float(np.mean(early))) ** (period / span_s) if span_s > 0 else nan
     return Oscillation(period, spec, len(peaks), float(np.mean(early)), float(np.mean(late)), growth,
-                       tuple(peak_t), tuple(peak_abs))
+                       tuple(peak_t), tuple(peak_abs), **shape)
