@@ -8,6 +8,7 @@ wrong-robot check, shared secret, watchdog and reconnect behaviour.
 from __future__ import annotations
 
 import random
+import secrets
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -64,8 +65,11 @@ class RobotConnector:
         link = SimLink(self.sim) if self.sim is not None else self._open_real_link(self.spec, profile)
         if self.faults is not None:
             link = FaultyLink(link, self.faults, random.Random(self._fault_rng.getrandbits(32)))
+        # Unique per connection: the hub answers a hello or command it has seen (same session id,
+        # sequence number and body) from its reply cache without running it again, so a second
+        # `trackproof run` with the same seed must not say hello as the first did.
         session = Session(link, watchdog_ms=profile.watchdog_ms, secret=profile.secret or None,
-                          session_id=f"run-{self.seed}-{self.connections}")
+                          session_id=f"run-{self.seed}-{self.connections}-{secrets.token_hex(4)}")
         try:
             hub = session.hello(geometry=profile.geometry(), expect_robot_id=profile.id)
             # Before anything moves: a reset routine the hub lacks would only show after the first run.
