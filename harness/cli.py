@@ -78,7 +78,17 @@ def cmd_sim(args: argparse.Namespace) -> int:
     if args.action == "serve":
         from harness.sim.serve import serve_on_pty
 
+        ignored = [name for name, given in (("key=value parameters", args.params), ("--json", args.json),
+                                            ("--telemetry-csv", args.telemetry_csv)) if given]
+        if ignored:
+            raise InputError(f"sim serve takes no {', '.join(ignored)}: the host that connects asks for the "
+                             "moves", key="sim serve")
         return serve_on_pty(args)
+    for option, value in (("--baud", args.baud), ("--secret", args.secret)):
+        if value is not None:
+            raise InputError("is for sim serve only (a one-off move has no serial link)", key=option)
+    if not 0 <= args.telemetry_hz <= 500:
+        raise InputError(f"must be 0 (off) to 500, got {args.telemetry_hz}", key="--telemetry-hz")
     profile = load_profile(args.robot or DEFAULT_PROFILE)
     course = load_course(args.course or DEFAULT_COURSE)
     params = profile.action_defaults(args.action, parse_assignments(args.params))
@@ -246,10 +256,10 @@ def cmd_show(args: argparse.Namespace) -> int:
         for source, block in stats.items():
             for name, s in block.items():
                 if "mean" in s:
-                    console.print(f"  {source:5} {name:18} n={s['n']:3} mean={s['mean']:9.3f} sd={_num(s['sd'])} "
+                    console.print(f"  {source:5} {name:20} n={s['n']:3} mean={s['mean']:9.3f} sd={_num(s['sd'])} "
                                   f"range={_num(s['range'])} rp={_num(s.get('rp'))}")
                 else:
-                    console.print(f"  {source:5} {name:18} n={s['n']:3} rp={_num(s['rp'])}")
+                    console.print(f"  {source:5} {name:20} n={s['n']:3} rp={_num(s['rp'])}")
         for check in checks:
             console.print(f"  {'ok  ' if check.passed else 'FAIL'} {check.text}")
         for line in why_runs_failed(outcomes):
