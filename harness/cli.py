@@ -3,12 +3,11 @@
 from __future__ import annotations
 
 import argparse
-import hashlib
 import json
 import os
 import sys
 from collections import Counter
-from importlib.metadata import version
+from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
 from typing import Any
 
@@ -79,15 +78,18 @@ def cmd_sim(args: argparse.Namespace) -> int:
         from harness.sim.serve import serve_on_pty
 
         ignored = [name for name, given in (("key=value parameters", args.params), ("--json", args.json),
-                                            ("--telemetry-csv", args.telemetry_csv)) if given]
+                                            ("--telemetry-csv", args.telemetry_csv),
+                                            ("--telemetry-hz", args.telemetry_hz is not None)) if given]
         if ignored:
-            raise InputError(f"sim serve takes no {', '.join(ignored)}: the host that connects asks for the "
-                             "moves", key="sim serve")
+            raise InputError(f"takes no {', '.join(ignored)}: the host that connects asks for the moves",
+                             key="sim serve")
         return serve_on_pty(args)
     for option, value in (("--baud", args.baud), ("--secret", args.secret)):
         if value is not None:
             raise InputError("is for sim serve only (a one-off move has no serial link)", key=option)
-    if not 0 <= args.telemetry_hz <= 500:
+    if args.telemetry_hz is None:
+        args.telemetry_hz = 100
+    elif not 0 <= args.telemetry_hz <= 500:
         raise InputError(f"must be 0 (off) to 500, got {args.telemetry_hz}", key="--telemetry-hz")
     profile = load_profile(args.robot or DEFAULT_PROFILE)
     course = load_course(args.course or DEFAULT_COURSE)
@@ -201,11 +203,14 @@ def cmd_run(args: argparse.Namespace) -> int:
 def check_resumable(info: dict[str, Any], suite: Suite, seed: int | None) -> int | None:
     """A session is resumed only with the suite it ran, unchanged; the seed is the session's
     unless another is given. Returns the seed to run with."""
-    if info["suite_sha256"] != hashlib.sha256(suite.text.encode("utf-8")).hexdigest():
+    if info["suite_sha256"] != suite.sha256:
         what = (f"suite {info['suite_name']!r} ({info['suite_path']})" if info["suite_path"]
                 else f"`trackproof {info['suite_name']}`")
         raise InputError(f"session {info['uid']} recorded {what}, not this suite as it is now; resume it "
                          "with the same, unchanged suite file", file=str(suite.path), key="--resume")
+    if seed is not None and info["seed"] is not None and seed != info["seed"]:
+        raise InputError(f"session {info['uid']} ran with seed {info['seed']}; resume it with that seed (or "
+                         "leave --seed out)", key="--seed")
     return seed if seed is not None else info["seed"]
 
 
@@ -306,13 +311,20 @@ def _num(value: Any) -> str:
     return "-" if value is None else f"{value:.3f}"
 
 
+def _version() -> str:
+    try:
+        return version("trackproof")
+    except PackageNotFoundError:  # run from a source tree that was never installed
+        return "(not installed)"
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="trackproof",
         description="Repeatability harness for line-following robots.",
         epilog=SAFETY_NOTE,
     )
-    parser.add_argument("--version", action="version", version=f"trackproof {version('trackproof')}")
+    parser.add_argument("--version", action="version", version=f"trackproof {_version()}")
     sub = parser.add_subparsers(dest="command", required=True)
     sim = sub.add_parser("sim", help="run one action on the simulated robot",
                          description="Run one action on the simulated robot and print its result, "
@@ -325,7 +337,7 @@ def build_parser() -> argparse.ArgumentParser:
     sim.add_argument("--course", type=Path, help=f"course file (default {DEFAULT_COURSE.name})")
     sim.add_argument("--robot", type=Path, help=f"robot profile (default {DEFAULT_PROFILE.name})")
     sim.add_argument("--seed", type=int, default=0, help="random seed (same seed, same run)")
-    sim.add_argument("--telemetry-hz", type=int, default=100, help="telemetry rate, 0..500 (default 100)")
+    sim.add_argument("--telemetry-hz", type=int, help="telemetry rate, 0..500 (default 100)")
     sim.add_argument("--telemetry-csv", type=Path, metavar="PATH", help="write the telemetry as CSV")
     sim.add_argument("--json", action="store_true", help="print one JSON object")
     sim.add_argument("--baud", type=int, help="serve: pace the hub's output like a UART at this baud rate")

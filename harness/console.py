@@ -12,7 +12,8 @@ import sys
 def main() -> int:
     try:
         from harness.cli import main as run_command
-    except KeyboardInterrupt:
+
+        return run_command()  # handles Ctrl-C itself once a command runs
+    except KeyboardInterrupt:  # while loading or reading the command line
         print("trackproof: interrupted while starting; nothing ran", file=sys.stderr)
         return 130
-    return run_command()

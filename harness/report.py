@@ -122,7 +122,7 @@ def print_report(report: SessionReport, console: Console) -> None:
             console.print(table)
         else:
             console.print(title, highlight=False, markup=False)
-        for check in case.checks:
+        for check in case.checks if case.runs else ():  # a case never run has nothing to check
             mark = "[green]ok[/green]  " if check.passed else "[red]FAIL[/red]"
             console.print(f"  {mark} {check.text}", highlight=False)
         for line in why_runs_failed(case.runs):

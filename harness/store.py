@@ -362,10 +362,21 @@ class Store:
         self._own_sessions: set[int] = set()  # sessions begun by this Store: never "interrupted"
         self._check_path()
         try:
-            self._conn = self._connect()
             # Before locking or any pragma that writes: a wrong file gets no lock file beside it
             # and is left exactly as it was.
-            self._check_header()
+            try:
+                self._conn = self._connect()
+                self._check_header()
+            except sqlite3.OperationalError as exc:
+                if not (readonly and "unable to open" in str(exc) and self._can_read_as_it_stands()):
+                    raise
+                # A read-only folder (a results file on a read-only mount, or someone else's):
+                # SQLite cannot make the WAL's shared-memory file beside it. With no WAL file
+                # there, the database file is all there is: read it as it stands.
+                if self._conn is not None:
+                    self._conn.close()
+                self._conn = self._connect(immutable=True)
+                self._check_header()
             if not readonly:
                 self._lock = _WriterLock(self.path)
                 self._lock.acquire(self.path)
@@ -391,19 +402,22 @@ class Store:
         if not parent.is_dir():
             raise StoreError(f"{self.path}: the directory {parent} does not exist")
 
-    def _connect(self) -> sqlite3.Connection:
+    def _connect(self, immutable: bool = False) -> sqlite3.Connection:
         # A URI so that no file name (":memory:", names with "?") is taken for anything but a path.
         uri = self.path.resolve().as_uri() + ("?mode=ro" if self.readonly else "?mode=rwc")
-        if self.readonly and not os.access(self.path.parent, os.W_OK):
-            # A read-only folder (a results file on a read-only mount, or shared): SQLite cannot
-            # make the WAL's shared-memory file beside it, so read the file as it stands. No
-            # writer can be recording there, as it could not make its journal either.
+        if immutable:
             uri += "&immutable=1"
         # isolation_level=None: this module issues BEGIN/COMMIT itself, so transaction borders are
         # exactly where the code says.
         conn = sqlite3.connect(uri, uri=True, isolation_level=None, timeout=_BUSY_TIMEOUT_S)
         conn.execute("PRAGMA foreign_keys = ON")
         return conn
+
+    def _can_read_as_it_stands(self) -> bool:
+        """A folder this process cannot write, and no WAL file holding changes not yet in the
+        database file (a writer elsewhere may be live; then only SQLite's own locking is safe)."""
+        wal = self.path.with_name(self.path.name + "-wal")
+        return not os.access(self.path.parent, os.W_OK) and not (wal.exists() and wal.stat().st_size > 0)
 
     def _open_error(self, exc: sqlite3.Error) -> StoreError:
         text = str(exc)

@@ -91,9 +91,16 @@ class Judgement:
             return "lost", "lost the line without swinging"
         if not osc.window_s > 0:
             return "unclear", "too short a record to judge"
-        if abs(osc.offset) >= floor:
-            return "unclear", (f"error held at {osc.offset:+.1f} to one side (its median): not centred on a straight "
-                               "line (a bend, the robot off to one side, or the sensors far out of balance)")
+        if abs(osc.offset) >= 3 * floor:
+            return "unclear", (f"error held at {osc.offset:+.1f} to one side (its median): riding on the line's "
+                               "edge, too far off for the swings to show (the robot off to one side, or the "
+                               "sensors far out of balance)")
+        if abs(osc.offset) >= floor and not measured and osc.spread_rms < floor / math.sqrt(2):
+            # A proportional loop keeps a steady offset against an imbalance (wheels, sensors),
+            # larger the lower the gain; held steadily, on a line with no bend (checked above), it
+            # is a stable loop, not a sign of anything else.
+            return "damped", (f"settled with a steady offset of {osc.offset:+.1f} (a proportional loop keeps one "
+                              f"against an imbalance), error RMS {osc.spread_rms:.1f} about it late in the run")
         if not measured:
             # Too few half-cycles to compare early and late peaks. Small spread late in the run:
             # the start swing died out and only noise is left. Large spread without swings from
@@ -519,7 +526,8 @@ class Tuner:
         geometry = self.profile.geometry()
         left = np.asarray(tel.enc_left_deg, dtype=float)
         right = np.asarray(tel.enc_right_deg, dtype=float)
-        x_mm = np.asarray(motion.travel_mm(left, right, geometry), dtype=float)
+        # How far along the line, whichever way it follows (backward runs count down).
+        x_mm = np.abs(np.asarray(motion.travel_mm(left, right, geometry), dtype=float))
         assert self.session is not None and self.session.hub is not None
         if self.session.hub.board.get("gyro"):
             heading, heading_from = np.asarray(tel.heading_deg, dtype=float), "gyro"

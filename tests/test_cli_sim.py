@@ -56,7 +56,8 @@ def test_sim_turn_prints_a_readable_report(capsys):
     (["sim", "follow_line"], "follow_line needs distance_mm, junctions or time_s"),
     (["sim", "turn", "angle_deg=90", "--telemetry-hz", "1000"], "--telemetry-hz: must be 0 (off) to 500"),
     (["sim", "turn", "angle_deg=90", "--baud", "9600"], "--baud: is for sim serve only"),
-    (["sim", "serve", "speed_pct=40"], "sim serve takes no key=value parameters"),
+    (["sim", "serve", "speed_pct=40"], "sim serve: takes no key=value parameters"),
+    (["sim", "serve", "--telemetry-hz", "7"], "sim serve: takes no --telemetry-hz"),
 ])
 def test_bad_input_is_one_clear_line_and_exit_code_2(capsys, args, message):
     code, out, err = run_cli(capsys, *args)

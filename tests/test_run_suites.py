@@ -201,7 +201,8 @@ def test_ctrl_c_keeps_finished_runs_and_the_session_resumes(tmp_path, capsys, mo
     from harness.session import Session
 
     suite = write_suite(tmp_path, "repeat = 4\n[[cases]]\nname = 'turn'\naction = 'turn'\nparams = { angle_deg = 45 }\n"
-                                  "[[cases]]\nname = 'later'\naction = 'stop'\n")
+                                  "[[cases]]\nname = 'later'\naction = 'stop'\n"
+                                  "expect = { duration_s = { max = 5 } }\n")
     db = tmp_path / "r.sqlite"
     real_run = Session.run
     calls = {"n": 0}
@@ -220,6 +221,7 @@ def test_ctrl_c_keeps_finished_runs_and_the_session_resumes(tmp_path, capsys, mo
     assert "turn: FAIL  (2 pass, 0 fail, 1 aborted, 1 not run;" in out
     assert "run 3: aborted: KeyboardInterrupt" in out
     assert "later: NOT RUN  (0 pass, 0 fail, not run;" in out
+    assert "no finished runs measured" not in out  # a case that never ran has nothing to check
     with Store(db, readonly=True) as store:
         uid = store.resolve_session("latest")
         assert store.session(uid)["status"] == "aborted"
@@ -229,6 +231,8 @@ def test_ctrl_c_keeps_finished_runs_and_the_session_resumes(tmp_path, capsys, mo
     other = write_suite(tmp_path, "[[cases]]\nname = 'x'\naction = 'stop'\n", name="other.toml")
     assert main(["run", str(other), "--db", str(db), "--resume", uid]) == 2
     assert f"session {uid} recorded suite" in capsys.readouterr().err
+    assert main(["run", str(suite), "--db", str(db), "--resume", uid, "--seed", "9"]) == 2
+    assert f"session {uid} ran with seed 0" in capsys.readouterr().err
     assert main(["run", str(suite), "--db", str(db), "--resume", uid]) == 0
     with Store(db, readonly=True) as store:
         runs = store.runs(uid)

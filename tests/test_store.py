@@ -75,18 +75,28 @@ def db(tmp_path: Path) -> Path:
 
 
 def test_a_results_file_in_a_read_only_folder_can_be_read(db: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    # As root (CI) a chmod does not stop writes, so the read-only folder is what os.access says.
+    # Where SQLite cannot make the WAL's shared-memory file (a read-only folder) it cannot open
+    # the file for reading; as root (CI) no folder is read-only, so that failure and the folder's
+    # permission are stood in for, and the fallback is what is tested.
     with Store(db) as store:
         uid = new_session(store)
         store.end_session(uid, "finished")
-    for leftover in (db.with_name(db.name + "-shm"), db.with_name(db.name + "-wal")):
-        leftover.unlink(missing_ok=True)
-    real_access = os.access
+    real_access, real_connect = os.access, Store._connect
     monkeypatch.setattr(os, "access", lambda path, mode: False if Path(path) == db.parent else real_access(path, mode))
+
+    def cannot_make_shm(self: Store, immutable: bool = False) -> sqlite3.Connection:
+        if not immutable:
+            raise sqlite3.OperationalError("unable to open database file")
+        return real_connect(self, immutable)
+
+    monkeypatch.setattr(Store, "_connect", cannot_make_shm)
     with Store(db, readonly=True) as store:
         assert store.session(uid)["status"] == "finished" and len(store.sessions()) == 1
-    # Read as it stands: nothing was made beside it (SQLite would have made the -shm file).
-    assert not db.with_name(db.name + "-shm").exists()
+    # With a WAL file beside it a writer may be live, and the file alone is not the whole story:
+    # refused with the reason rather than read wrong.
+    db.with_name(db.name + "-wal").write_bytes(b"\x00" * 32)
+    with pytest.raises(TrackproofError, match="cannot open"):
+        Store(db, readonly=True)
 
 
 def test_session_run_measurement_round_trip(db: Path) -> None:

@@ -62,14 +62,24 @@ def _verdict(e: np.ndarray) -> str:
 # ------------------------------------------------------------------ verdicts on synthetic records
 
 
-def test_an_error_held_to_one_side_is_unclear_not_damped() -> None:
-    # The median is taken off before half-cycles are cut, so a follower holding +25 (on a bend,
-    # off to one side) looked flat and was called damped: a stable bound for Ku.
-    assert _verdict(25.0 + _noise()) == "unclear"
-    assert _verdict(-25.0 + _noise()) == "unclear"
-    osc = oscillation_of(T, 25.0 + _noise(), hysteresis=HYSTERESIS)
-    assert osc.offset == pytest.approx(25.0, abs=0.2)
-    assert "held at +25.0 to one side" in Judgement().judge(osc, None)[1]
+def test_a_steady_offset_is_a_settled_loop_but_riding_the_edge_is_unclear() -> None:
+    # A proportional loop holds a steady offset against an imbalance, larger at low gains (about
+    # 13 at kp 0.02 on the simulator): stable, so a lower bound for Ku, and said so.
+    for offset in (13.0, -25.0):
+        osc = oscillation_of(T, offset + _noise(), hysteresis=HYSTERESIS)
+        assert osc.offset == pytest.approx(offset, abs=0.2)
+        verdict, why = Judgement().judge(osc, None)
+        assert verdict == "damped" and f"steady offset of {offset:+.1f}" in why
+    # The median is taken off before half-cycles are cut, so a follower held far to one side
+    # (near the line's edge, where swings cannot show) looked flat and was called damped.
+    assert _verdict(35.0 + _noise()) == "unclear"
+    assert _verdict(-35.0 + _noise()) == "unclear"
+    osc = oscillation_of(T, 35.0 + _noise(), hysteresis=HYSTERESIS)
+    assert "held at +35.0 to one side" in Judgement().judge(osc, None)[1]
+    # Wandering about an offset without swinging (large spread, too few half-cycles) stays unclear.
+    e = 15.0 + _noise()
+    e[(T > 3.0) & (T < 4.2)] += 40.0
+    assert _verdict(e) == "unclear"
 
 
 def test_an_excursion_to_one_side_is_unclear_not_damped() -> None:
