@@ -1,9 +1,9 @@
 """Every move a calibration or tuning command makes, kept in the results store.
 
 `trackproof run` stores each run of a suite the moment it ends. The calibrate and tune commands
-drive the robot as much, so their moves go into the same store: one session per command,
-named after it ("calibrate turns"), one case per kind of move ("spin +90 deg", "kp 0.4000"), each
-move a run with its result, events, measurements and telemetry. `trackproof sessions` and `show`
+drive the robot as much, so their moves go into the same store: one session per command, named
+after it ("calibrate turns"), one case per kind of move ("spin +90 deg", "kp 0.4000 kd 0.00000"),
+each move a run with its result, events, measurements and telemetry. `trackproof sessions` and `show`
 list them and `trackproof compare` can set two of them side by side (the same turns before and
 after a rebuild). The session's stored text is the command and its options, not a suite.
 
@@ -34,7 +34,6 @@ from harness.suites import Step
 # Measurements that need the tape's width (a probed stop's distance to the line's centre) are
 # left out: a calibration probes to a line's edge, and no suite says how wide the tape is.
 NO_LINE_WIDTH = math.nan
-
 
 
 class MoveLog:
@@ -68,8 +67,8 @@ class MoveLog:
             status = ("fail" if isinstance(exc, HubRefused) else
                       "link_lost" if isinstance(exc, (LinkError, ProtocolError)) else "aborted")
             # A store that fails now must not hide why the move failed: say so, raise the first.
-            record_while_failing(lambda: self._store(case, action, params, status, None, None,
-                                           note=f"{type(exc).__name__}: {exc}".rstrip(": ")))
+            note = f"{type(exc).__name__}: {exc}".rstrip(": ")
+            record_while_failing(lambda: self._store(case, action, params, status, None, None, note=note))
             raise
         truth = truth_report(before, truth_snapshot(sim)) if before is not None and sim is not None else None
         if record.telemetry.dropped:
