@@ -18,7 +18,7 @@ from hub_side.motion import (
     turn_aim_deg,
 )
 
-_SPEED = ("num", 40.0, 0.0, 100.0)
+_SPEED = ("num", 40.0, 1.0, 100.0)  # 0 would never arrive: a refusal, not a timeout
 _RAMP = {
     "start_pct": ("num", 15.0, 0.0, 100.0),
     "ramp_up_mm": ("num", 0.0, 0.0, 100000.0),

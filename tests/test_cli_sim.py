@@ -55,6 +55,7 @@ def test_sim_turn_prints_a_readable_report(capsys):
     # The hub's own message, whole (only text echoed from the host is cut short).
     (["sim", "follow_line"], "follow_line needs distance_mm, junctions or time_s"),
     (["sim", "turn", "angle_deg=90", "--telemetry-hz", "1000"], "--telemetry-hz: must be 0 (off) to 500"),
+    (["sim", "turn", "angle_deg=90", "speed_pct=0"], "turn.speed_pct: must be between 1.0 and 100.0, got 0"),
     (["sim", "turn", "angle_deg=90", "--baud", "9600"], "--baud: is for sim serve only"),
     (["sim", "serve", "speed_pct=40"], "sim serve: takes no key=value parameters"),
     (["sim", "serve", "--telemetry-hz", "7"], "sim serve: takes no --telemetry-hz"),
