@@ -21,7 +21,7 @@ from harness.errors import InputError, TrackproofError
 from harness.jsonout import check_writable, write_text
 from harness.links import SimLink, parse_faults
 from harness.profile import load_profile
-from harness.report import print_report, why_runs_failed, write_json, write_junit
+from harness.report import print_report, why_runs_failed, write_junit, write_summary_json
 from harness.operator import SAFETY_NOTE, OperatorStopped
 from harness.runner import Runner, judge_case, stored_outcomes
 from harness.session import Session
@@ -181,7 +181,7 @@ def cmd_run(args: argparse.Namespace) -> int:
                 return 130
     # Files first: a reader that leaves early (| head) must not cost them.
     if args.json:
-        write_json(report, args.json)
+        write_summary_json(report, args.json)
     if args.junit:
         write_junit(report, args.junit)
     print_report(report, console)

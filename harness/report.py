@@ -17,7 +17,7 @@ from typing import Any
 from rich.console import Console
 from rich.table import Table
 
-from harness.jsonout import write_text
+from harness.jsonout import write_json, write_text
 from harness.runner import RunOutcome, SessionReport
 
 
@@ -49,8 +49,8 @@ def summary_dict(report: SessionReport) -> dict[str, Any]:
     }
 
 
-def write_json(report: SessionReport, path: Path) -> None:
-    write_text(path, json.dumps(summary_dict(report), indent=2) + "\n")
+def write_summary_json(report: SessionReport, path: Path) -> None:
+    write_json(path, summary_dict(report))
 
 
 def write_junit(report: SessionReport, path: Path) -> None:

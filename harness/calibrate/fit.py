@@ -42,9 +42,6 @@ class LineFit:
     def through_origin(self) -> bool:
         return self.intercept_se is None
 
-    def predict(self, x: ArrayLike) -> NDArray[np.float64]:
-        return self.intercept + self.slope * np.asarray(x, dtype=np.float64)
-
     def as_dict(self) -> dict[str, Any]:
         return {
             "model": "y = b x" if self.through_origin else "y = a + b x",

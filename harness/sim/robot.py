@@ -145,11 +145,6 @@ class SimRobot:
         """Index of the line under the robot's axle midpoint (the one it follows)."""
         return self.mat.nearest_line(self.pose.x_mm, self.pose.y_mm)[0]
 
-    def distance_to_cross_line_mm(self, name: str, followed: int) -> float:
-        """Distance from a sensor to the centreline of the nearest line other than `followed`."""
-        x, y = self.sensor_xy(name)
-        return self.mat.nearest_line(x, y, exclude=followed)[1]
-
 
 class SimBoard(Board):
     """The hub's board interface over the simulated robot and an in-memory byte link."""
