@@ -9,7 +9,6 @@ metric: n, mean, sd, min, max, range, ci95_low, ci95_high, and rp for lengths an
 
 from __future__ import annotations
 
-import json
 import xml.etree.ElementTree as ET
 from pathlib import Path
 from typing import Any
