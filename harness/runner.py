@@ -304,8 +304,8 @@ class Runner:
                 status, note = "link_lost", f"telemetry incomplete: {missing} samples lost on the link"
         except BaseException as exc:
             status = "link_lost" if isinstance(exc, (LinkError, ProtocolError)) else "aborted"
-            record_while_failing(lambda: self.store.finish_run(run_id, status, {}, [], [], None,
-                                                               note=f"{type(exc).__name__}: {exc}"))
+            note = f"{type(exc).__name__}: {exc}"
+            record_while_failing(lambda: self.store.finish_run(run_id, status, {}, [], [], None, note=note))
             raise
         measurements = measure_run(case.steps[: len(records)], records, truths, self.suite.line_width_mm)
         result = {"steps": [r.result for r in records]}
